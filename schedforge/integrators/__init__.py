@@ -1,0 +1,1 @@
+"""Integrators for the master equation, registered by name in :mod:`schedforge.dynamics`."""

@@ -1,0 +1,1 @@
+"""Matplotlib figures; each function takes ``ax=None`` and returns the figure."""

@@ -1,0 +1,173 @@
+"""The validated, immutable model of a study spec (``version = 1``).
+
+These frozen dataclasses are what the rest of schedforge consumes.  They are
+produced by :func:`schedforge.spec.load_spec` / :func:`schedforge.spec.parse_spec`
+after schema and semantic validation, or built directly in Python.  Everything
+here is picklable, so a :class:`Spec` can be shipped to worker processes and to
+Dask workers.
+
+Units: energies are E/h in GHz, times in ns, temperatures in mK.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import asdict, dataclass, field, replace
+from typing import Any
+
+__all__ = [
+    "BathSpec",
+    "DeviceSpec",
+    "InitialSpec",
+    "NumericsSpec",
+    "ProblemSpec",
+    "ScheduleSpec",
+    "Spec",
+    "SweepSpec",
+    "WaveformSpec",
+]
+
+
+@dataclass(frozen=True)
+class DeviceSpec:
+    """Energy curves A(s), B(s) of H(s) = -(A/2) sum X_i + (B/2) H_problem.
+
+    ``curves`` is ``"linear"`` (A = A0 (1 - s), B = B0 s) or the path of a CSV
+    file with columns ``s, A_ghz, B_ghz`` (resolved to an absolute path).
+    """
+
+    curves: str = "linear"
+    A0_ghz: float = 3.5
+    B0_ghz: float = 2.5
+
+
+@dataclass(frozen=True)
+class ProblemSpec:
+    """Ising problem H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless)."""
+
+    qubits: int = 1
+    h: tuple[float, ...] = (0.7,)
+    J: tuple[tuple[int, int, float], ...] = ()
+
+
+@dataclass(frozen=True)
+class BathSpec:
+    """Independent ohmic baths, one per qubit, coupled through one Pauli operator.
+
+    ``spectrum = "none"`` means a closed system.
+    """
+
+    spectrum: str = "ohmic"
+    coupling: str = "x"
+    eta: float = 1e-4
+    cutoff_ghz: float = 8.0
+    temperature_mk: float = 12.0
+    lamb_shift: bool = False
+
+    @property
+    def closed(self) -> bool:
+        """True for a closed (unitary) system."""
+        return self.spectrum == "none"
+
+
+@dataclass(frozen=True)
+class ScheduleSpec:
+    """One schedule s = f(t / tf).
+
+    ``tail`` is the fraction of the anneal reshaped by the ``poly`` and
+    ``points`` families; ``points`` holds the (x, s) control points of the
+    ``points`` family (and an optional base for ``poly``).
+    """
+
+    family: str = "beta"
+    k_start: float = 0
+    k_end: float = 2
+    tf_ns: float = 1000.0
+    tail: float = 0.2
+    points: tuple[tuple[float, float], ...] | None = None
+
+
+@dataclass(frozen=True)
+class InitialSpec:
+    """Initial state: the Gibbs state (``"gibbs"``) or ground state (``"ground"``) of H(0)."""
+
+    state: str = "gibbs"
+
+
+@dataclass(frozen=True)
+class NumericsSpec:
+    """Integrator choice and tolerances.
+
+    ``integrator`` is ``"auto"`` or the name of a registered integrator.
+    """
+
+    integrator: str = "auto"
+    rtol: float = 1e-10
+    atol: float = 1e-14
+
+
+@dataclass(frozen=True)
+class SweepSpec:
+    """Grid of points: every combination of family x k_end x tf_ns."""
+
+    tf_ns: tuple[float, ...] = ()
+    k_end: tuple[float, ...] = ()
+    family: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class WaveformSpec:
+    """What the hardware can play; ``None`` fields mean "no such limit"."""
+
+    sample_rate_gsps: float | None = None
+    dac_bits: int | None = None
+    bandwidth_mhz: float | None = None
+    filter: str = "gaussian"
+    max_slope_per_ns: float | None = None
+    breakpoints: int | None = None
+    breakpoint_tolerance: float = 1e-4
+
+
+@dataclass(frozen=True)
+class Spec:
+    """A whole study.  ``source`` is the file it came from (not part of the physics)."""
+
+    version: int = 1
+    device: DeviceSpec = field(default_factory=DeviceSpec)
+    problem: ProblemSpec = field(default_factory=ProblemSpec)
+    bath: BathSpec = field(default_factory=BathSpec)
+    schedule: ScheduleSpec = field(default_factory=ScheduleSpec)
+    initial: InitialSpec = field(default_factory=InitialSpec)
+    numerics: NumericsSpec = field(default_factory=NumericsSpec)
+    sweep: SweepSpec | None = None
+    waveform: WaveformSpec | None = None
+    source: str | None = field(default=None, compare=False)
+
+    def physics_dict(self) -> dict[str, Any]:
+        """The part of the spec that determines every simulated number.
+
+        It excludes the schedule's own coordinates (family, k, tf), which a sweep
+        varies, and the sweep grid itself; it includes the schedule's shape
+        parameters (``tail``, ``points``), the integrator settings and the waveform.
+        """
+        sched = self.schedule
+        return {
+            "version": self.version,
+            "device": asdict(self.device),
+            "problem": asdict(self.problem),
+            "bath": asdict(self.bath),
+            "schedule_shape": {"tail": sched.tail, "points": sched.points},
+            "initial": asdict(self.initial),
+            "numerics": asdict(self.numerics),
+            "waveform": None if self.waveform is None else asdict(self.waveform),
+        }
+
+    def physics_hash(self) -> str:
+        """SHA-256 of :meth:`physics_dict` in canonical JSON (stable across runs)."""
+        text = json.dumps(self.physics_dict(), sort_keys=True, default=list)
+        return hashlib.sha256(text.encode()).hexdigest()
+
+    def with_schedule(self, **changes: Any) -> Spec:
+        """A copy with some schedule fields changed (``family``, ``k_end``, ``tf_ns``...)."""
+        return replace(self, schedule=replace(self.schedule, **changes))
