@@ -1,0 +1,673 @@
+"""Loading and validating study spec files (TOML, ``version = 1``).
+
+A spec file describes one study: the device's energy curves, the Ising problem,
+the bath, the schedule, the initial state, integrator settings, an optional
+sweep grid and optional hardware waveform limits.  :func:`load_spec` reads a
+file (or a packaged scenario, ``builtin:NAME``) with :mod:`tomllib`, checks it
+against a closed schema (every section has a fixed set of keys; each key has a
+type), then runs semantic checks, and returns a frozen
+:class:`~schedforge.spec_model.Spec`.
+
+Every problem is raised as :class:`~schedforge.errors.InputError` naming the key
+path (``problem.J[2]``, ``sweep.tf_ns.start``) and the rule it broke; misspelt
+keys get the nearest known key as a suggestion.  Defaults are the dataclass
+defaults of :mod:`schedforge.spec_model`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import math
+import os
+import tomllib
+from collections.abc import Callable, Sequence
+from datetime import date, datetime, time
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import InputError
+from .spec_model import (
+    BathSpec,
+    DeviceSpec,
+    InitialSpec,
+    NumericsSpec,
+    ProblemSpec,
+    ScheduleSpec,
+    Spec,
+    SweepSpec,
+    WaveformSpec,
+)
+
+__all__ = [
+    "BUILTIN_PREFIX",
+    "MAX_QUBITS",
+    "MAX_SWEEP_GRID",
+    "SPEC_VERSION",
+    "TEMPLATE",
+    "builtin_scenarios",
+    "load_spec",
+    "parse_spec",
+]
+
+#: The only spec format version this release reads.
+SPEC_VERSION = 1
+#: Prefix selecting a packaged scenario in :func:`load_spec`.
+BUILTIN_PREFIX = "builtin:"
+#: Largest number of qubits a spec may declare.
+MAX_QUBITS = 10
+#: Largest ``num`` of a ``{start, stop, num}`` sweep grid (guards against typos).
+MAX_SWEEP_GRID = 1000
+
+_SECTIONS: dict[str, type] = {
+    "device": DeviceSpec,
+    "problem": ProblemSpec,
+    "bath": BathSpec,
+    "schedule": ScheduleSpec,
+    "initial": InitialSpec,
+    "numerics": NumericsSpec,
+    "sweep": SweepSpec,
+    "waveform": WaveformSpec,
+}
+_TOP_KEYS = ("version", *_SECTIONS)
+
+SPECTRA = ("ohmic", "none")
+COUPLINGS = ("x", "y", "z")
+INITIAL_STATES = ("gibbs", "ground")
+FILTERS = ("gaussian", "single-pole")
+
+
+# ---------------------------------------------------------------------------
+# value readers
+# ---------------------------------------------------------------------------
+def _toml_type(value: Any) -> str:
+    """Name of a value's TOML type, for messages."""
+    if isinstance(value, bool):
+        return "boolean"
+    if isinstance(value, int):
+        return "integer"
+    if isinstance(value, float):
+        return "float"
+    if isinstance(value, str):
+        return "string"
+    if isinstance(value, list):
+        return "array"
+    if isinstance(value, dict):
+        return "table"
+    if isinstance(value, datetime | date | time):
+        return "date/time"
+    return type(value).__name__
+
+
+def _shown(value: Any) -> str:
+    """A value as shown in a message: its TOML type and a short repr."""
+    text = repr(value)
+    if len(text) > 60:
+        text = text[:57] + "..."
+    return f"{_toml_type(value)} {text}"
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool)
+
+
+def _number(
+    value: Any,
+    path: str,
+    *,
+    gt: float | None = None,
+    ge: float | None = None,
+    lt: float | None = None,
+    le: float | None = None,
+) -> float:
+    """Check a finite number within bounds; return it as ``float``."""
+    if not _is_number(value):
+        raise InputError(path, f"must be a number, got {_shown(value)}")
+    x = float(value)
+    if not math.isfinite(x):
+        raise InputError(path, f"must be a finite number, got {value!r}")
+    bounds = []
+    if gt is not None:
+        bounds.append(f"> {gt:g}")
+    if ge is not None:
+        bounds.append(f">= {ge:g}")
+    if lt is not None:
+        bounds.append(f"< {lt:g}")
+    if le is not None:
+        bounds.append(f"<= {le:g}")
+    ok = (
+        (gt is None or x > gt)
+        and (ge is None or x >= ge)
+        and (lt is None or x < lt)
+        and (le is None or x <= le)
+    )
+    if not ok:
+        raise InputError(path, f"must be a number {' and '.join(bounds)}, got {value!r}")
+    return x
+
+
+def _order(value: Any, path: str) -> float:
+    """A derivative-count k >= 0 (integer or real); integers stay integers."""
+    x = _number(value, path, ge=0)
+    return value if isinstance(value, int) else x
+
+
+def _integer(value: Any, path: str, *, ge: int | None = None, le: int | None = None) -> int:
+    """Check an integer (not a boolean, not a float) within bounds."""
+    if not isinstance(value, int) or isinstance(value, bool):
+        raise InputError(path, f"must be an integer, got {_shown(value)}")
+    if (ge is not None and value < ge) or (le is not None and value > le):
+        lo = "" if ge is None else f">= {ge}"
+        hi = "" if le is None else f"<= {le}"
+        rule = " and ".join(p for p in (lo, hi) if p)
+        raise InputError(path, f"must be an integer {rule}, got {value!r}")
+    return value
+
+
+def _string(value: Any, path: str, choices: Sequence[str] | None = None) -> str:
+    """Check a string, optionally one of ``choices`` (with a suggestion for typos)."""
+    if not isinstance(value, str):
+        raise InputError(path, f"must be a string, got {_shown(value)}")
+    if choices is not None and value not in choices:
+        known = ", ".join(repr(c) for c in choices)
+        hint = _suggest(value, choices)
+        raise InputError(path, f"must be one of {known}; got {value!r}{hint}")
+    return value
+
+
+def _boolean(value: Any, path: str) -> bool:
+    if not isinstance(value, bool):
+        raise InputError(path, f"must be true or false, got {_shown(value)}")
+    return value
+
+
+def _array(value: Any, path: str, *, nonempty: bool = False) -> list[Any]:
+    if not isinstance(value, list):
+        raise InputError(path, f"must be an array, got {_shown(value)}")
+    if nonempty and not value:
+        raise InputError(path, "must not be empty")
+    return value
+
+
+def _table(value: Any, path: str) -> dict[str, Any]:
+    if not isinstance(value, dict):
+        raise InputError(path, f"must be a table, got {_shown(value)}")
+    return value
+
+
+def _suggest(word: str, known: Sequence[str]) -> str:
+    """``"; did you mean `x`?"`` for the nearest known word, or ``""``."""
+    close = difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
+    return f"; did you mean `{close[0]}`?" if close else ""
+
+
+def _check_keys(table: dict[str, Any], known: Sequence[str], where: str) -> None:
+    """Reject keys outside the closed set ``known`` of a section."""
+    for key in table:
+        if key not in known:
+            path = f"{where}.{key}" if where else key
+            what = "a known key" if where else "a known section"
+            listing = ", ".join(known)
+            raise InputError(path, f"is not {what}{_suggest(key, known)} (known: {listing})")
+
+
+def _no_repeats(values: Sequence[Any], path: str) -> None:
+    seen: set[Any] = set()
+    for i, v in enumerate(values):
+        if v in seen:
+            raise InputError(f"{path}[{i}]", f"repeats the value {v!r}; list each value once")
+        seen.add(v)
+
+
+def _known_families() -> tuple[str, ...]:
+    from .schedules import FAMILIES  # the registry grows as families are added
+
+    return tuple(sorted(FAMILIES))
+
+
+# ---------------------------------------------------------------------------
+# sections
+# ---------------------------------------------------------------------------
+def _section(
+    data: dict[str, Any],
+    name: str,
+    readers: dict[str, Callable[[Any, str], Any]],
+) -> dict[str, Any]:
+    """Validate one section and return the dataclass keyword arguments it sets."""
+    cls = _SECTIONS[name]
+    known = [f.name for f in dataclasses.fields(cls)]
+    table = _table(data.get(name, {}), name)
+    _check_keys(table, known, name)
+    out: dict[str, Any] = {}
+    for key, value in table.items():
+        out[key] = readers[key](value, f"{name}.{key}")
+    return out
+
+
+def _positive(value: Any, path: str) -> float:
+    return _number(value, path, gt=0)
+
+
+def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
+    kw = _section(
+        data,
+        "device",
+        {"curves": _string, "A0_ghz": _positive, "B0_ghz": _positive},
+    )
+    curves = kw.get("curves", DeviceSpec.curves)
+    if curves != "linear":
+        if not curves.strip():
+            raise InputError("device.curves", 'must be "linear" or the path of a CSV file')
+        path = Path(os.path.expanduser(curves))
+        if not path.is_absolute():
+            path = base_dir / path
+        path = path.resolve()
+        if not path.is_file():
+            raise InputError(
+                "device.curves",
+                f'must be "linear" or an existing CSV file (columns s, A_ghz, B_ghz); '
+                f"{str(path)!r} does not exist (relative paths are resolved from the "
+                f"spec file's folder)",
+            )
+        kw["curves"] = str(path)
+    return DeviceSpec(**kw)
+
+
+def _h_list(value: Any, path: str) -> tuple[float, ...]:
+    items = _array(value, path)
+    return tuple(_number(v, f"{path}[{i}]") for i, v in enumerate(items))
+
+
+def _j_list(value: Any, path: str) -> tuple[tuple[int, int, float], ...]:
+    items = _array(value, path)
+    out = []
+    for n, entry in enumerate(items):
+        where = f"{path}[{n}]"
+        if not isinstance(entry, list) or len(entry) != 3:
+            raise InputError(where, f"must be an array [i, j, J_ij], got {_shown(entry)}")
+        i = _integer(entry[0], f"{where}[0]", ge=0)
+        j = _integer(entry[1], f"{where}[1]", ge=0)
+        out.append((i, j, _number(entry[2], f"{where}[2]")))
+    return tuple(out)
+
+
+def _problem(data: dict[str, Any]) -> ProblemSpec:
+    kw = _section(
+        data,
+        "problem",
+        {
+            "qubits": lambda v, p: _integer(v, p, ge=1, le=MAX_QUBITS),
+            "h": _h_list,
+            "J": _j_list,
+        },
+    )
+    spec = ProblemSpec(**kw)
+    n = spec.qubits
+    if len(spec.h) != n:
+        raise InputError("problem.h", f"must have one entry per qubit ({n}), got {len(spec.h)}")
+    pairs: set[tuple[int, int]] = set()
+    for idx, (i, j, _) in enumerate(spec.J):
+        if not 0 <= i < j < n:
+            raise InputError(
+                f"problem.J[{idx}]",
+                f"must have qubit indices 0 <= i < j < qubits ({n}), got i={i}, j={j}",
+            )
+        if (i, j) in pairs:
+            raise InputError(
+                f"problem.J[{idx}]", f"repeats the pair ({i}, {j}); give each pair once"
+            )
+        pairs.add((i, j))
+    return spec
+
+
+def _bath(data: dict[str, Any]) -> BathSpec:
+    kw = _section(
+        data,
+        "bath",
+        {
+            "spectrum": lambda v, p: _string(v, p, SPECTRA),
+            "coupling": lambda v, p: _string(v, p, COUPLINGS),
+            "eta": lambda v, p: _number(v, p, ge=0),
+            "cutoff_ghz": _positive,
+            "temperature_mk": _positive,
+            "lamb_shift": _boolean,
+        },
+    )
+    return BathSpec(**kw)
+
+
+def _points(value: Any, path: str) -> tuple[tuple[float, float], ...]:
+    items = _array(value, path, nonempty=True)
+    out: list[tuple[float, float]] = []
+    for n, entry in enumerate(items):
+        where = f"{path}[{n}]"
+        if not isinstance(entry, list) or len(entry) != 2:
+            raise InputError(where, f"must be an array [x, s], got {_shown(entry)}")
+        x = _number(entry[0], f"{where}[0]", ge=0, le=1)
+        s = _number(entry[1], f"{where}[1]", ge=0, le=1)
+        if out and x <= out[-1][0]:
+            raise InputError(
+                f"{where}[0]", f"must be larger than the previous x ({out[-1][0]:g}), got {x:g}"
+            )
+        out.append((x, s))
+    return tuple(out)
+
+
+def _family(value: Any, path: str) -> str:
+    return _string(value, path, _known_families())
+
+
+def _schedule(data: dict[str, Any]) -> ScheduleSpec:
+    kw = _section(
+        data,
+        "schedule",
+        {
+            "family": _family,
+            "k_start": _order,
+            "k_end": _order,
+            "tf_ns": _positive,
+            "tail": lambda v, p: _number(v, p, gt=0, lt=1),
+            "points": _points,
+        },
+    )
+    return ScheduleSpec(**kw)
+
+
+def _initial(data: dict[str, Any]) -> InitialSpec:
+    kw = _section(data, "initial", {"state": lambda v, p: _string(v, p, INITIAL_STATES)})
+    return InitialSpec(**kw)
+
+
+def _integrator_name(value: Any, path: str) -> str:
+    name = _string(value, path)
+    if not name.strip():
+        raise InputError(path, 'must be "auto" or the name of an integrator')
+    return name
+
+
+def _numerics(data: dict[str, Any]) -> NumericsSpec:
+    kw = _section(
+        data,
+        "numerics",
+        {
+            "integrator": _integrator_name,
+            "rtol": lambda v, p: _number(v, p, gt=0, lt=1),
+            "atol": lambda v, p: _number(v, p, gt=0, lt=1),
+        },
+    )
+    return NumericsSpec(**kw)
+
+
+def _tf_grid(value: Any, path: str) -> tuple[float, ...]:
+    if isinstance(value, dict):
+        _check_keys(value, ("start", "stop", "num"), path)
+        for key in ("start", "stop", "num"):
+            if key not in value:
+                raise InputError(
+                    f"{path}.{key}", "is required in a log grid {start = .., stop = .., num = ..}"
+                )
+        start = _number(value["start"], f"{path}.start", gt=0)
+        stop = _number(value["stop"], f"{path}.stop", gt=0)
+        num = _integer(value["num"], f"{path}.num", ge=1, le=MAX_SWEEP_GRID)
+        if stop < start:
+            raise InputError(f"{path}.stop", f"must be >= start ({start:g}), got {stop:g}")
+        if num == 1 and stop != start:
+            raise InputError(f"{path}.num", "must be >= 2 when start and stop differ")
+        if num > 1 and stop == start:
+            raise InputError(f"{path}.num", "must be 1 when start equals stop")
+        return tuple(float(t) for t in np.geomspace(start, stop, num))
+    if not isinstance(value, list):
+        raise InputError(
+            path,
+            f"must be an array of times in ns or a table {{start, stop, num}}, got {_shown(value)}",
+        )
+    items = _array(value, path, nonempty=True)
+    out = tuple(_number(v, f"{path}[{i}]", gt=0) for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _k_list(value: Any, path: str) -> tuple[float, ...]:
+    items = _array(value, path, nonempty=True)
+    out = tuple(_order(v, f"{path}[{i}]") for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _family_list(value: Any, path: str) -> tuple[str, ...]:
+    items = _array(value, path, nonempty=True)
+    out = tuple(_family(v, f"{path}[{i}]") for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _sweep(data: dict[str, Any]) -> SweepSpec | None:
+    if "sweep" not in data:
+        return None
+    kw = _section(data, "sweep", {"tf_ns": _tf_grid, "k_end": _k_list, "family": _family_list})
+    if "tf_ns" not in kw:
+        raise InputError("sweep.tf_ns", "is required in a [sweep] section")
+    return SweepSpec(**kw)
+
+
+def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
+    if "waveform" not in data:
+        return None
+    kw = _section(
+        data,
+        "waveform",
+        {
+            "sample_rate_gsps": _positive,
+            "dac_bits": lambda v, p: _integer(v, p, ge=1, le=32),
+            "bandwidth_mhz": _positive,
+            "filter": lambda v, p: _string(v, p, FILTERS),
+            "max_slope_per_ns": _positive,
+            "breakpoints": lambda v, p: _integer(v, p, ge=2),
+            "breakpoint_tolerance": _positive,
+        },
+    )
+    return WaveformSpec(**kw)
+
+
+def _check_schedules(spec: Spec) -> None:
+    """Build the spec's schedule, and every sweep variant, to apply each family's own rules."""
+    from .schedules import schedule_from_spec
+
+    schedule_from_spec(spec.schedule)
+    if spec.sweep is None:
+        return
+    for family in spec.sweep.family or (spec.schedule.family,):
+        for k_end in spec.sweep.k_end or (spec.schedule.k_end,):
+            variant = spec.with_schedule(family=family, k_end=k_end)
+            try:
+                schedule_from_spec(variant.schedule)
+            except InputError as err:
+                raise InputError(
+                    err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end})"
+                ) from None
+
+
+# ---------------------------------------------------------------------------
+# public API
+# ---------------------------------------------------------------------------
+def parse_spec(
+    data: dict[str, Any],
+    base_dir: str | os.PathLike[str] | None = None,
+    *,
+    source: str | None = None,
+) -> Spec:
+    """Validate a spec given as a dict (as read by :func:`tomllib.load`).
+
+    Parameters
+    ----------
+    data : dict
+        The parsed TOML document.
+    base_dir : path-like, optional
+        Folder against which a relative ``device.curves`` CSV path is resolved;
+        defaults to the current directory.
+    source : str, optional
+        Where the spec came from (stored in ``Spec.source``).
+
+    Returns
+    -------
+    Spec
+        The validated, frozen spec.
+
+    Raises
+    ------
+    InputError
+        Naming the key path and the rule, for unknown sections or keys, wrong
+        types, out-of-range values and inconsistent combinations (the schedule,
+        and each family x k_end of the sweep, is built once to apply the
+        family's own rules).
+    """
+    data = _table(data, "spec")
+    _check_keys(data, _TOP_KEYS, "")
+    if "version" not in data:
+        raise InputError("version", f"is required; write `version = {SPEC_VERSION}` at the top")
+    version = _integer(data["version"], "version")
+    if version != SPEC_VERSION:
+        raise InputError(
+            "version", f"must be {SPEC_VERSION} (the only format this release reads), got {version}"
+        )
+    base = Path(base_dir) if base_dir is not None else Path.cwd()
+    spec = Spec(
+        version=version,
+        device=_device(data, base),
+        problem=_problem(data),
+        bath=_bath(data),
+        schedule=_schedule(data),
+        initial=_initial(data),
+        numerics=_numerics(data),
+        sweep=_sweep(data),
+        waveform=_waveform(data),
+        source=source,
+    )
+    _check_schedules(spec)
+    return spec
+
+
+def builtin_scenarios() -> tuple[str, ...]:
+    """Names of the packaged scenarios usable as ``builtin:NAME``."""
+    folder = resources.files("schedforge") / "data" / "scenarios"
+    return tuple(
+        sorted(p.name[: -len(".toml")] for p in folder.iterdir() if p.name.endswith(".toml"))
+    )
+
+
+def _read_toml(text: str, label: str) -> dict[str, Any]:
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(label, f"is not valid TOML: {exc}") from None
+
+
+def load_spec(path_or_name: str | os.PathLike[str]) -> Spec:
+    """Read and validate a spec file, or a packaged scenario ``builtin:NAME``.
+
+    Parameters
+    ----------
+    path_or_name : str or path-like
+        Path of a TOML file, or ``"builtin:NAME"`` with NAME one of
+        :func:`builtin_scenarios` (e.g. ``builtin:driven-qubit``).
+
+    Returns
+    -------
+    Spec
+        With ``source`` set to the file path or the ``builtin:NAME`` string.
+
+    Raises
+    ------
+    InputError
+        If the file is missing or unreadable, is not valid TOML, or fails
+        validation (see :func:`parse_spec`).
+    """
+    name = os.fspath(path_or_name)
+    if name.startswith(BUILTIN_PREFIX):
+        key = name[len(BUILTIN_PREFIX) :]
+        known = builtin_scenarios()
+        if key not in known:
+            raise InputError(
+                "spec",
+                f"names an unknown built-in scenario {key!r}{_suggest(key, known)} "
+                f"(known: {', '.join(known)})",
+            )
+        resource = resources.files("schedforge") / "data" / "scenarios" / f"{key}.toml"
+        data = _read_toml(resource.read_text(encoding="utf-8"), name)
+        with resources.as_file(resource) as real:
+            return parse_spec(data, Path(real).parent, source=name)
+    path = Path(name)
+    if not path.is_file():
+        raise InputError("spec", f"must be an existing TOML file; {name!r} was not found")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError("spec", f"could not be read from {name!r}: {exc}") from None
+    data = _read_toml(text, name)
+    return parse_spec(data, path.resolve().parent, source=str(path))
+
+
+TEMPLATE = f"""\
+# schedforge study spec.  Units: energies E/h in GHz, times in ns, temperatures in mK.
+# Every key below shows its default value; delete what you do not need.
+version = {SPEC_VERSION}
+
+[device]
+# Energy curves of H(s) = -(A(s)/2) sum_i X_i + (B(s)/2) H_problem.
+# "linear" means A(s) = A0_ghz (1 - s) and B(s) = B0_ghz s.  Alternatively give the
+# path of a CSV table with columns s, A_ghz, B_ghz (relative to this file's folder).
+curves = "linear"
+A0_ghz = 3.5
+B0_ghz = 2.5
+
+[problem]
+# H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1..{MAX_QUBITS} qubits.
+qubits = 1
+h = [0.7]          # one entry per qubit
+J = []             # couplings as [i, j, J_ij] with 0 <= i < j < qubits, e.g. [[0, 1, -1.0]]
+
+[bath]
+spectrum = "ohmic"       # "ohmic", or "none" for a closed system
+coupling = "x"           # each qubit has its own bath, coupled through this Pauli: x, y or z
+eta = 1e-4               # dimensionless coupling strength eta*g^2 (>= 0)
+cutoff_ghz = 8.0         # ohmic cutoff frequency
+temperature_mk = 12.0
+lamb_shift = false       # include the bath-induced energy shift
+
+[schedule]
+# s = f(t / tf).  k_start / k_end: how many derivatives of s vanish at t = 0 / t = tf.
+family = "beta"          # linear, beta, poly, gevrey or points
+k_start = 0
+k_end = 2
+tf_ns = 1000.0           # anneal time
+tail = 0.2               # fraction of the anneal reshaped by the poly and points families
+# points = [[0.0, 0.0], [0.5, 0.4], [1.0, 1.0]]   # [x, s] control points (points family)
+
+[initial]
+state = "gibbs"          # "gibbs" (thermal state of H(0)) or "ground"
+
+[numerics]
+integrator = "auto"      # "auto" or the name of an integrator
+rtol = 1e-10
+atol = 1e-14
+
+# A sweep runs every combination of family x k_end x tf_ns.
+# [sweep]
+# tf_ns = [300.0, 1000.0, 3000.0]        # or a log grid: {{start = 100.0, stop = 10000.0, num = 9}}
+# k_end = [0, 1, 2]
+# family = ["beta"]                      # optional; defaults to schedule.family
+
+# What the hardware can play; leave a limit out when there is none.
+# Check every value against your device's documented limits.
+# [waveform]
+# sample_rate_gsps = 1.0
+# dac_bits = 14
+# bandwidth_mhz = 200.0
+# filter = "gaussian"                    # or "single-pole"
+# max_slope_per_ns = 0.01
+# breakpoints = 32
+# breakpoint_tolerance = 1e-4
+"""
