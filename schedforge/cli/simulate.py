@@ -1,0 +1,112 @@
+"""``schedforge simulate``: one anneal of a spec, with its error to the target state."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+from typing import Any
+
+from ..dynamics import SimulationResult, simulate_spec
+from ..spec import load_spec
+from .options import add_spec_argument, positive_float
+
+__all__ = ["format_result", "register", "run"]
+
+
+def _k_value(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}") from None
+    if not (math.isfinite(value) and value >= 0):
+        raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}")
+    return value
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``simulate`` command."""
+    parser = subparsers.add_parser(
+        "simulate",
+        help="simulate one anneal and report its distance to the target state",
+        description=(
+            "Simulate the anneal of SPEC (open system: time-dependent Davies master equation; "
+            'bath spectrum "none": closed system) and report the trace distance of the final '
+            "state to the target (the Gibbs state of H(1), or the ground state for a closed "
+            "system), the ground-state infidelity and the excess energy over the target."
+        ),
+    )
+    add_spec_argument(parser)
+    parser.add_argument(
+        "--tf-ns",
+        type=positive_float("--tf-ns"),
+        default=None,
+        help="anneal time in ns (default: schedule.tf_ns of the spec)",
+    )
+    parser.add_argument(
+        "--k-end",
+        type=_k_value,
+        default=None,
+        help="number of vanishing derivatives at the end (default: schedule.k_end)",
+    )
+    parser.add_argument(
+        "--json",
+        action="store_true",
+        help="print one JSON object (tf_ns, k_end, trace_distance, "
+        "ground_infidelity, excess_energy_ghz, status, ...)",
+    )
+    parser.set_defaults(handler=run)
+
+
+def _clean(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_clean(v) for v in value]
+    return value
+
+
+def format_result(result: SimulationResult) -> str:
+    """A readable multi-line summary of one simulation."""
+    lines = [
+        f"schedule        {result.family} "
+        f"(k_start = {result.k_start:g}, k_end = {result.k_end:g}), "
+        f"{result.variant}",
+        f"anneal time     {result.tf_ns:g} ns",
+        f"integrator      {result.integrator} ({result.stats.get('steps', '?')} steps, "
+        f"{result.stats.get('rhs_evaluations', '?')} rhs evaluations, {result.wall_s:.2f} s)",
+        f"status          {result.status}",
+    ]
+    if result.ok:
+        lines += [
+            f"trace distance  {result.trace_distance:.6e}   (||rho(tf) - sigma(1)||_1 / 2)",
+            f"ground infid.   {result.ground_infidelity:.6e}   (1 - <ground|rho(tf)|ground>)",
+            f"excess energy   {result.excess_energy_ghz:.6e} GHz "
+            "(tr H(1)(rho(tf) - sigma(1)), E/h)",
+        ]
+    else:
+        lines.append(f"failure         {result.message}")
+        lines.append("no error figures: the integration did not finish")
+    gap = result.stats.get("liouvillian_gap_final_ghz")
+    if gap is not None:
+        lines.append(
+            f"Liouvillian gap {gap:.4g} GHz at s = 1 "
+            f"(min {result.stats['liouvillian_gap_min_ghz']:.4g}"
+            f" GHz at s = {result.stats['s_at_liouvillian_gap_min']:.3f})"
+        )
+    for w in result.warnings:
+        lines.append(f"warning: {w}")
+    return "\n".join(lines)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run the command; bad input raises InputError (exit 2 via the CLI)."""
+    spec = load_spec(args.spec)
+    result = simulate_spec(spec, tf_ns=args.tf_ns, k_end=args.k_end)
+    if args.json:
+        print(json.dumps(_clean(result.to_dict()), indent=2, sort_keys=True))
+    else:
+        print(format_result(result))
+    return 0 if result.ok else 1
