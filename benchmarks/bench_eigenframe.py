@@ -1,0 +1,187 @@
+"""Speed of the eigenframe integrator, side by side with its references.
+
+Run from the repository root (about 5-15 minutes on a 2-core machine)::
+
+    python benchmarks/bench_eigenframe.py                  # everything
+    python benchmarks/bench_eigenframe.py --parts tf sweep # a subset
+
+Parts:
+- ``qutip``: QuTiP ``brmesolve`` (secular Bloch-Redfield, time-dependent H, Verner 9(8)
+  at atol 1e-13 / rtol 1e-11) against the eigenframe integrator for the driven qubit at
+  tf = 1e3 ns, k_end = 2: wall times, their ratio and the relative difference of the
+  trace distances.
+- ``general``: the same point with the general (lab-frame DOP853) integrator.
+- ``tf``: eigenframe wall time per point at tf = 1e2 .. 1e5 ns and t(1e5) / t(1e2).
+- ``qubits``: wall time per point against qubit count 1..8 at tf = 1e3 ns (an invented
+  Ising chain with unequal fields and couplings).
+- ``sweep``: 5 values of k_end x 17 tf from 1e1 to 1e5 ns for the driven qubit, serially.
+
+Each part prints its lines; copy them to benchmarks/RESULTS.md with date and machine.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import time
+from dataclasses import replace
+from datetime import UTC, datetime
+
+import numpy as np
+
+from schedforge.dynamics import System, simulate
+from schedforge.schedules import make_schedule
+from schedforge.spec import load_spec
+from schedforge.spec_model import ProblemSpec
+from schedforge.units import GHZ_TO_RAD_PER_NS
+
+
+def _qubit() -> System:
+    return System.from_spec(load_spec("builtin:driven-qubit"))
+
+
+def _chain(n: int) -> ProblemSpec:
+    """An invented Ising chain: unequal fields, alternating couplings (no symmetry)."""
+    h = tuple(round(0.7 - 0.23 * i + 0.05 * (i % 3), 3) for i in range(n))
+    J = tuple((i, i + 1, round(0.55 - 0.3 * (i % 2) + 0.04 * i, 3)) for i in range(n - 1))
+    return ProblemSpec(qubits=n, h=h, J=J)
+
+
+def _timed(fn, *args, **kwargs):
+    t0 = time.perf_counter()
+    out = fn(*args, **kwargs)
+    return out, time.perf_counter() - t0
+
+
+def brmesolve_trace_distance(system: System, k_end: int, tf: float) -> float:
+    """QuTiP brmesolve for the same system and schedule; trace distance to sigma(1)."""
+    import qutip
+
+    ham, bath = system.hamiltonian, system.bath
+    sched = make_schedule("beta", k_start=0, k_end=k_end)
+    dims = [[2] * ham.n_qubits, [2] * ham.n_qubits]
+
+    def s_of(t: float) -> float:
+        return float(sched(min(max(t / tf, 0.0), 1.0)))
+
+    def a_coef(t: float) -> float:
+        return -0.5 * GHZ_TO_RAD_PER_NS * float(ham.curves.A(s_of(t)))
+
+    def b_coef(t: float) -> float:
+        return 0.5 * GHZ_TO_RAD_PER_NS * float(ham.curves.B(s_of(t)))
+
+    h = [
+        [qutip.Qobj(ham.driver, dims=dims), a_coef],
+        [qutip.Qobj(ham.problem_matrix, dims=dims), b_coef],
+    ]
+
+    def spectrum(w: float) -> float:
+        return float(bath.gamma(np.array([w]))[0])
+
+    res = qutip.brmesolve(
+        h,
+        qutip.Qobj(system.initial_state(), dims=dims),
+        [0.0, tf],
+        a_ops=[[qutip.Qobj(a, dims=dims), spectrum] for a in bath.operators],
+        sec_cutoff=1e-6,
+        options={"method": "vern9", "atol": 1e-13, "rtol": 1e-11, "nsteps": 10**8},
+    )
+    dev = res.states[-1].full() - system.target_state()
+    return 0.5 * float(np.abs(np.linalg.eigvalsh(0.5 * (dev + dev.conj().T))).sum())
+
+
+def part_qutip(tf: float = 1e3, k_end: int = 2) -> None:
+    system = _qubit()
+    fast, t_fast = _timed(simulate, system, make_schedule("beta", k_end=k_end), tf)
+    ref, t_ref = _timed(brmesolve_trace_distance, system, k_end, tf)
+    print(
+        f"qutip   tf={tf:g} k={k_end}: brmesolve {t_ref:.2f} s, eigenframe {t_fast:.3f} s, "
+        f"ratio {t_ref / t_fast:.0f}x; trace distance {ref:.10e} vs "
+        f"{fast.trace_distance:.10e} (rel. diff {fast.trace_distance / ref - 1:.1e})"
+    )
+
+
+def part_general(tf: float = 1e3, k_end: int = 2) -> None:
+    system = _qubit()
+    f = make_schedule("beta", k_end=k_end)
+    fast, t_fast = _timed(simulate, system, f, tf)
+    ref, t_ref = _timed(simulate, system, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
+    print(
+        f"general tf={tf:g} k={k_end}: general {t_ref:.2f} s, eigenframe {t_fast:.3f} s, "
+        f"ratio {t_ref / t_fast:.0f}x; rel. diff "
+        f"{fast.trace_distance / ref.trace_distance - 1:.1e}"
+    )
+
+
+def part_tf(k_end: int = 2, repeats: int = 3) -> None:
+    system = _qubit()
+    f = make_schedule("beta", k_end=k_end)
+    times = {}
+    for tf in (1e2, 1e3, 1e4, 1e5):
+        walls = []
+        for _ in range(repeats):
+            r, w = _timed(simulate, system, f, tf)
+            walls.append(w)
+        times[tf] = min(walls)
+        print(
+            f"tf      tf={tf:>8g} ns: {times[tf]:.3f} s (best of {repeats}), "
+            f"steps {r.stats['steps']}, mode {r.stats.get('mode')}, integrator {r.integrator}"
+        )
+    print(f"tf      t(1e5)/t(1e2) = {times[1e5] / times[1e2]:.2f}")
+
+
+def part_qubits(tf: float = 1e3, max_qubits: int = 8) -> None:
+    spec = load_spec("builtin:driven-qubit")
+    f = make_schedule("beta", k_end=2)
+    for n in range(1, max_qubits + 1):
+        system = System.from_spec(replace(spec, problem=_chain(n)))
+        t0 = time.perf_counter()
+        system.preflight()
+        t_pre = time.perf_counter() - t0
+        r, w = _timed(simulate, system, f, tf)
+        print(
+            f"qubits  n={n}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
+            f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
+            f"trace distance {r.trace_distance:.3e}"
+        )
+
+
+def part_sweep() -> None:
+    system = _qubit()
+    tfs = np.geomspace(1e1, 1e5, 17)
+    t0 = time.perf_counter()
+    n = 0
+    for k in range(5):
+        f = make_schedule("beta", k_end=k)
+        for tf in tfs:
+            simulate(system, f, float(tf))
+            n += 1
+    total = time.perf_counter() - t0
+    print(f"sweep   {n} points (5 k_end x 17 tf, 1e1..1e5 ns), serial: {total:.1f} s")
+
+
+PARTS = {
+    "qutip": part_qutip,
+    "general": part_general,
+    "tf": part_tf,
+    "qubits": part_qubits,
+    "sweep": part_sweep,
+}
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--parts", nargs="+", choices=sorted(PARTS), default=list(PARTS))
+    args = parser.parse_args()
+    print(
+        f"# {datetime.now(UTC).isoformat(timespec='seconds')}  {platform.machine()} "
+        f"{os.cpu_count()} cores  python {platform.python_version()}  "
+        f"load {os.getloadavg()[0]:.1f}"
+    )
+    for name in args.parts:
+        PARTS[name]()
+
+
+if __name__ == "__main__":
+    main()

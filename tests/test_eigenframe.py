@@ -1,0 +1,173 @@
+"""The fast eigenframe integrator against independent references.
+
+References:
+- the general (lab-frame, DOP853) integrator at tight tolerance, itself validated against
+  QuTiP's ``brmesolve`` in ``test_qutip_crosscheck.py``;
+- the Radau IIA tableau (Hairer & Wanner, Solving Ordinary Differential Equations II,
+  Springer 1996, Table IV.5.5);
+- the boundary-cancellation law: error ~ tf^-(k+1) for a schedule flat to order k at the
+  end (Campos Venuti, Albash, Lidar & Zanardi, Phys. Rev. A 93, 032118 (2016)); slope
+  tolerance +-0.03 is common practice, no source;
+- detailed balance of the Davies rates (Davies, Commun. Math. Phys. 39, 91 (1974)).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from schedforge.dynamics import System, simulate
+from schedforge.integrators import eigenframe as ef
+from schedforge.schedules import make_schedule
+from schedforge.spec import load_spec
+from schedforge.spec_model import ProblemSpec
+
+
+@pytest.fixture(scope="module")
+def qubit() -> System:
+    return System.from_spec(load_spec("builtin:driven-qubit"))
+
+
+def _spec_with(problem: ProblemSpec, **bath: object):
+    spec = load_spec("builtin:driven-qubit")
+    spec = replace(spec, problem=problem)
+    if bath:
+        spec = replace(spec, bath=replace(spec.bath, **bath))
+    return spec
+
+
+TWO_QUBITS = ProblemSpec(qubits=2, h=(0.7, -0.45), J=((0, 1, 0.55),))
+THREE_QUBITS = ProblemSpec(
+    qubits=3, h=(0.7, -0.45, 0.3), J=((0, 1, 0.55), (1, 2, -0.35), (0, 2, 0.2))
+)
+
+
+def _agree(fast: float, ref: float) -> bool:
+    # the accuracy target: 1e-6 relative, or 1e-13 absolute at the double-precision floor
+    return abs(fast - ref) <= 1e-6 * abs(ref) + 1e-13
+
+
+# -- building blocks ----------------------------------------------------------------
+def test_radau_tableau_matches_published_values() -> None:
+    # Hairer & Wanner (1996): two-stage Radau IIA has c = (1/3, 1) and
+    # A = [[5/12, -1/12], [3/4, 1/4]]; three-stage nodes (4 -+ sqrt 6)/10, 1.
+    two = ef.collocation_scheme(2)
+    np.testing.assert_allclose(two.c, [1 / 3, 1.0], atol=1e-14)
+    np.testing.assert_allclose(two.A, [[5 / 12, -1 / 12], [3 / 4, 1 / 4]], atol=1e-13)
+    three = ef.collocation_scheme(3)
+    s6 = math.sqrt(6.0)
+    np.testing.assert_allclose(three.c, [(4 - s6) / 10, (4 + s6) / 10, 1.0], atol=1e-13)
+    # the default scheme integrates polynomials of its degree exactly
+    sch = ef.collocation_scheme()
+    np.testing.assert_allclose(sch.w @ sch.tau**5, 1 / 6, atol=1e-13)
+
+
+def test_davies_rates_obey_detailed_balance(qubit: System) -> None:
+    # Davies (1974): W_ab pi_b = W_ba pi_a with pi the Gibbs weights, at any s
+    model = ef.EigenframeModel.from_system(System.from_spec(_spec_with(THREE_QUBITS)))
+    fr = model.frame(np.array([0.2, 0.7, 1.0]), None)
+    for W, pi in zip(fr.W, fr.pi, strict=True):
+        flux = W * pi[None, :]
+        np.testing.assert_allclose(flux, flux.T, atol=1e-14 * np.abs(W).max())
+        np.testing.assert_allclose(W.sum(axis=0), 0.0, atol=1e-12 * np.abs(W).max())
+
+
+def test_frame_rotation_matches_eigenvector_derivative(qubit: System) -> None:
+    # K = V^T dV/ds against a central difference of the (sign-aligned) eigenvectors
+    model = ef.EigenframeModel.from_system(System.from_spec(_spec_with(TWO_QUBITS)))
+    s0, ds = 0.4, 1e-6
+    mid = model.frame(np.array([s0]), None)
+    plus = model.frame(np.array([s0 + ds]), mid.V[0])
+    minus = model.frame(np.array([s0 - ds]), mid.V[0])
+    dV = (plus.V[0] - minus.V[0]) / (2 * ds)
+    np.testing.assert_allclose(mid.K[0], mid.V[0].T @ dV, atol=1e-6)
+
+
+# -- agreement with the general integrator -------------------------------------------
+@pytest.mark.parametrize("k_end", [0, 4])
+def test_qubit_short_anneal_matches_general(qubit: System, k_end: int) -> None:
+    f = make_schedule("beta", k_end=k_end)
+    ref = simulate(qubit, f, 10.0, integrator="general", rtol=1e-12, atol=1e-16)
+    fast = simulate(qubit, f, 10.0, integrator="eigenframe")
+    assert fast.integrator == "eigenframe"
+    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+    assert abs(fast.ground_infidelity - ref.ground_infidelity) <= 1e-9
+    assert abs(fast.excess_energy_ghz - ref.excess_energy_ghz) <= 1e-9
+
+
+@pytest.mark.slow
+def test_qubit_exponential_steps_match_general(qubit: System) -> None:
+    # tf = 100 ns: the exponential (Levin) path with dressed free oscillations
+    f = make_schedule("beta", k_end=0)
+    ref = simulate(qubit, f, 100.0, integrator="general", rtol=1e-12, atol=1e-16)
+    fast = simulate(qubit, f, 100.0, integrator="eigenframe")
+    assert fast.stats["mode"] == "exponential"
+    assert fast.stats["steps"] < 200  # the general one needs thousands
+    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+
+
+@pytest.mark.parametrize(("problem", "tf"), [(TWO_QUBITS, 10.0), (THREE_QUBITS, 6.0)])
+def test_ising_short_anneal_matches_general(problem: ProblemSpec, tf: float) -> None:
+    system = System.from_spec(_spec_with(problem))
+    f = make_schedule("beta", k_end=2)
+    ref = simulate(system, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
+    fast = simulate(system, f, tf, integrator="eigenframe")
+    assert fast.integrator == "eigenframe"
+    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+
+
+# -- the long-anneal regime -------------------------------------------------------------
+@pytest.mark.parametrize("k_end", [0, 1, 2, 3])
+def test_boundary_cancellation_slope(qubit: System, k_end: int) -> None:
+    # Campos Venuti et al. (2016): error ~ tf^-(k+1); +-0.03 common practice, no source
+    f = make_schedule("beta", k_end=k_end)
+    tfs = [1e4, 1e5]
+    err = [simulate(qubit, f, tf).trace_distance for tf in tfs]
+    slope = math.log(err[1] / err[0]) / math.log(tfs[1] / tfs[0])
+    assert abs(slope + (k_end + 1)) <= 0.03, slope
+
+
+def test_cost_does_not_grow_with_tf(qubit: System) -> None:
+    # deterministic proxy for cost: accepted steps at tf = 1e5 vs 1e3 ns
+    f = make_schedule("beta", k_end=2)
+    steps = [simulate(qubit, f, tf).stats["steps"] for tf in (1e3, 1e5)]
+    assert steps[1] <= 1.5 * steps[0], steps
+
+
+def test_tolerance_convergence_at_long_anneal(qubit: System) -> None:
+    f = make_schedule("beta", k_end=2)
+    loose = simulate(qubit, f, 3e4, integrator="eigenframe", rtol=1e-9, atol=1e-16)
+    tight = simulate(qubit, f, 3e4, integrator="eigenframe", rtol=1e-12, atol=1e-20)
+    assert abs(loose.trace_distance / tight.trace_distance - 1) <= 1e-6
+
+
+def test_two_qubit_long_anneal_slope() -> None:
+    system = System.from_spec(_spec_with(TWO_QUBITS))
+    f = make_schedule("beta", k_end=2)
+    err = [simulate(system, f, tf).trace_distance for tf in (2e4, 1e5)]
+    slope = math.log(err[1] / err[0]) / math.log(5.0)
+    assert abs(slope + 3) <= 0.03, slope
+
+
+# -- where it does not apply, it says so ----------------------------------------------
+def test_closed_system_falls_back() -> None:
+    system = System.from_spec(_spec_with(ProblemSpec(), spectrum="none"))
+    res = simulate(system, make_schedule("beta", k_end=1), 5.0, integrator="eigenframe")
+    assert "fallback" in res.integrator
+    assert res.stats["fallback"] == "closed system"
+    assert res.status == "ok"
+
+
+def test_degenerate_problem_falls_back_to_general() -> None:
+    # two identical, uncoupled qubits: Bohr frequencies coincide all along the anneal,
+    # so the Davies generator couples coherences the eigenframe integrator keeps apart
+    system = System.from_spec(_spec_with(ProblemSpec(qubits=2, h=(0.5, 0.5), J=())))
+    f = make_schedule("beta", k_end=1)
+    res = simulate(system, f, 3.0, integrator="eigenframe")
+    ref = simulate(system, f, 3.0, integrator="general")
+    assert "fallback" in res.integrator
+    assert "degenerate" in res.stats["fallback"]
+    assert res.trace_distance == pytest.approx(ref.trace_distance, rel=1e-9)
