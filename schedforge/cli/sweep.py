@@ -1,0 +1,148 @@
+"""``schedforge sweep SPEC --out DIR``: run every point of the spec's grid, resumably.
+
+Each finished point is committed at once to ``DIR/sweep.sqlite``; rerunning the
+same command after a crash, Ctrl-C or ``kill -9`` computes only the missing points.
+``DIR/points.csv`` is regenerated from the store at the end.  When the analysis
+module provides ``analyse_sweep_dir(out_dir, spec)``, it is called after a
+complete sweep to add the fits and the report to ``DIR`` (not with
+``--points-only``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import importlib.util
+import sys
+from pathlib import Path
+from typing import Any
+
+from ..errors import InputError
+from ..executors import EXECUTOR_KINDS, make_executor
+from .options import add_spec_argument, positive_int
+
+__all__ = ["register", "run"]
+
+_ANALYSIS_MODULE = "schedforge.analysis"
+_ANALYSIS_HOOK = "analyse_sweep_dir"
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``sweep`` command."""
+    p = subparsers.add_parser(
+        "sweep",
+        help="simulate every point of the spec's [sweep] grid (resumable)",
+        description=(
+            "Simulate every point of the spec's [sweep] grid (family x k_end x tf_ns; "
+            "realized-waveform twins when the spec has [waveform]). Finished points are "
+            "stored in DIR/sweep.sqlite at once; rerun the same command to resume after an "
+            "interruption. Writes DIR/points.csv. The linear family has no flat end: one "
+            "point per tf_ns, recorded with k_start = k_end = 0."
+        ),
+    )
+    add_spec_argument(p)
+    p.add_argument("--out", required=True, metavar="DIR", help="sweep folder (created if needed)")
+    p.add_argument(
+        "--executor",
+        choices=EXECUTOR_KINDS,
+        default=None,
+        help="where points run: serial, local processes (default) or dask",
+    )
+    p.add_argument(
+        "--workers",
+        type=positive_int("--workers"),
+        metavar="N",
+        help="processes for --executor processes (default: all cores)",
+    )
+    p.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="join a running Dask scheduler (tcp://host:8786); its workers need the same "
+        "schedforge version installed",
+    )
+    p.add_argument(
+        "--dask-local",
+        type=positive_int("--dask-local"),
+        metavar="N",
+        help="start a Dask LocalCluster with N workers",
+    )
+    p.add_argument(
+        "--fresh",
+        action="store_true",
+        help="archive an existing store in DIR (to DIR/archive/<time>/) and start over",
+    )
+    p.add_argument(
+        "--points-only",
+        action="store_true",
+        help="compute and store the points and write points.csv, but skip the fits and "
+        "the report (make them later from DIR)",
+    )
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+    p.set_defaults(handler=run)
+
+
+def _executor_kind(args: argparse.Namespace) -> str:
+    uses_dask = args.scheduler is not None or args.dask_local is not None
+    kind = args.executor or ("dask" if uses_dask else "processes")
+    if uses_dask and kind != "dask":
+        option = "--scheduler" if args.scheduler is not None else "--dask-local"
+        raise InputError(option, f"needs --executor dask, not --executor {kind}")
+    return kind
+
+
+def _analysis_hook() -> Any:
+    if importlib.util.find_spec(_ANALYSIS_MODULE) is None:
+        return None
+    return getattr(importlib.import_module(_ANALYSIS_MODULE), _ANALYSIS_HOOK, None)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Handler of ``schedforge sweep``; returns the exit status.
+
+    0: every point is stored (some may have failed: they are listed);
+    1: some points could not be computed (the executor lost them);
+    2: bad input (raised as InputError and reported by the CLI);
+    130: interrupted (Ctrl-C); the finished points are stored.
+    """
+    from ..spec import load_spec
+    from ..sweep import format_summary, run_sweep
+
+    kind = _executor_kind(args)
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise InputError("--out", f"must be a directory, {out} is a file")
+    spec = load_spec(args.spec)
+    progress = "quiet" if args.quiet else "auto"
+    with make_executor(kind, args.workers, args.scheduler, args.dask_local) as ex:
+        try:
+            outcome = run_sweep(spec, out, executor=ex, progress=progress, fresh=args.fresh)
+        except KeyboardInterrupt:
+            print(
+                f"interrupted: every finished point is stored in {out / 'sweep.sqlite'}; "
+                "rerun the same command to compute the rest",
+                file=sys.stderr,
+            )
+            return 130
+    if not args.quiet:
+        print(format_summary(outcome))
+        if outcome.archived is not None:
+            print(f"old store archived to {outcome.archived}")
+        print(f"wrote {outcome.csv_path}")
+    if not outcome.complete:
+        print(
+            f"error: sweep incomplete: {outcome.n_points - outcome.n_done} of "
+            f"{outcome.n_points} points missing; rerun the same command to retry them",
+            file=sys.stderr,
+        )
+        return 1
+    if outcome.failed:
+        where = "listed above" if not args.quiet else f"see the status column of {outcome.csv_path}"
+        print(
+            f"warning: sweep complete, but {outcome.n_failed} point(s) did not succeed "
+            f"({where}); their numbers are NaN and must not be used",
+            file=sys.stderr,
+        )
+    hook = None if args.points_only else _analysis_hook()
+    if hook is not None:
+        hook(out, spec)
+    return 0
