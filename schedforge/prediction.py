@@ -1,0 +1,350 @@
+"""The leading coefficient C_k of the error law, from the final generator alone.
+
+For a time-dependent master equation ``drho/dt = L(s(t/tf)) rho`` with a unique
+instantaneous steady state ``sigma(s)``, the adiabatic expansion in the
+dimensionless time x = t / tf (Phys. Rev. A 93, 032118 (2016), arXiv:1508.05558)
+reads ``rho = sigma + sum_(n>=1) tf^-n rho_n`` with
+
+    rho_1 = L^+ dsigma/dx,    rho_(n+1) = L^+ d rho_n / dx,
+
+where ``L^+`` is the inverse of ``L`` on traceless operators (the sign follows
+from ``d rho/dx = tf L rho``: order tf^(1-n) gives ``L rho_n = d rho_(n-1)/dx``).
+If the schedule s = f(x) is flat to order k at the end (f', ..., f^(k) vanish
+at x = 1), every term of ``rho_n(1)`` with n <= k carries a vanishing derivative
+of f, and the only surviving term of ``rho_(k+1)(1)`` is the one where all k+1
+derivatives act on sigma through f^(k+1):
+
+    rho(tf) - sigma(1) ~ tf^-(k+1) (L_1^+)^(k+1) f^(k+1)(1) dsigma/ds(1)
+
+in the equilibrated regime (the boundary layer from the initial state has
+decayed; end-boundary version: Phys. Rev. A 98, 022315 (2018),
+arXiv:1806.06310).  The trace distance therefore falls as ``C_k tf^-(k+1)`` with
+
+    C_k = || (L_1^+)^(k+1) dsigma/ds(1) ||_1 |f^(k+1)(1)| / 2,
+
+``L_1`` in rad/ns and tf in ns, so C_k is in ns^(k+1).  No time integration is
+needed: only ``L(1)``, ``sigma(1)`` and ``dsigma/ds(1)``.
+
+``dsigma/ds(1)`` is taken by a one-sided finite difference of high order
+(:data:`FD_ORDER` nodes s = 1, 1 - h, ..., Fornberg weights), since the
+schedule ends at s = 1 and the device curves need not exist beyond it.
+
+``L^+`` is applied through the invertible matrix ``M = L + |sigma><1|`` (where
+``<1|`` is the trace functional): for traceless ``Y``, ``X = M^-1 Y`` is the
+unique traceless solution of ``L X = Y``.  ``M`` is singular exactly when the
+steady state is not unique; that case is reported, not hidden.
+
+Limits: the generator is a dense ``d^2 x d^2`` matrix, so the prediction is
+offered up to :data:`MAX_DIM` levels; schedules whose first non-vanishing end
+derivative is infinite (``beta`` with non-integer k) or that are flat to every
+order (``gevrey``) have no such coefficient, and the result says so.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import linalg
+
+from .schedules import Schedule
+
+__all__ = [
+    "FD_ORDER",
+    "MAX_DIM",
+    "Prediction",
+    "one_sided_derivative",
+    "predict_from_generator",
+    "predicted_coefficient",
+    "trace_norm",
+    "traceless_inverse",
+]
+
+#: Number of nodes of the one-sided finite difference for dsigma/ds(1).
+FD_ORDER: int = 7
+#: Default step of that finite difference.
+FD_STEP: float = 2e-3
+#: Largest Hilbert-space dimension for which the dense generator is used.
+MAX_DIM: int = 32
+#: Reciprocal condition number below which the steady state is declared not unique.
+RCOND_MIN: float = 1e-13
+
+
+@dataclass(frozen=True)
+class Prediction:
+    """Predicted leading coefficient of the error law err ~ C tf^-(k+1).
+
+    Attributes
+    ----------
+    coefficient : float
+        C_k in ns^(k+1) (nan when not available).
+    k : int
+        Flatness order used (the first non-vanishing end derivative is k + 1).
+    end_derivative : float
+        f^(k+1)(1).
+    status : str
+        ``"ok"`` or ``"not available"``.
+    message : str
+        Why the prediction is not available, or a short description.
+    leading_deviation : ndarray or None
+        The operator ``(L_1^+)^(k+1) f^(k+1)(1) dsigma/ds(1)`` (d x d): the
+        predicted ``tf^(k+1) (rho(tf) - sigma(1))``.
+    liouvillian_gap : float
+        Smallest |Re| of the non-zero eigenvalues of L_1 (rad/ns), nan if unknown.
+    """
+
+    coefficient: float
+    k: int
+    end_derivative: float
+    status: str
+    message: str
+    leading_deviation: NDArray[np.complex128] | None = field(default=None, repr=False)
+    liouvillian_gap: float = math.nan
+
+    @property
+    def ok(self) -> bool:
+        """True when a coefficient is available."""
+        return self.status == "ok"
+
+    def error_at(self, tf_ns: float) -> float:
+        """Predicted trace distance C_k tf^-(k+1) at anneal time ``tf_ns``."""
+        return self.coefficient * float(tf_ns) ** -(self.k + 1)
+
+    def tf_for_error(self, eps: float) -> float:
+        """Anneal time (ns) at which the predicted error equals ``eps``."""
+        return (self.coefficient / float(eps)) ** (1.0 / (self.k + 1))
+
+
+def trace_norm(a: NDArray[Any]) -> float:
+    """Trace norm ||a||_1 (sum of singular values)."""
+    return float(np.sum(linalg.svdvals(a)))
+
+
+def _vec(a: NDArray[Any]) -> NDArray[Any]:
+    """Column-stacking vec."""
+    return np.asarray(a).reshape(-1, order="F")
+
+
+def _unvec(v: NDArray[Any], d: int) -> NDArray[Any]:
+    return np.asarray(v).reshape((d, d), order="F")
+
+
+def traceless_inverse(
+    generator: NDArray[Any], sigma: NDArray[Any]
+) -> Callable[[NDArray[Any]], NDArray[Any]]:
+    """The map ``Y -> X`` with ``L X = Y`` and ``tr X = 0`` for traceless ``Y``.
+
+    Parameters
+    ----------
+    generator : ndarray
+        ``L`` as a ``d^2 x d^2`` superoperator (column-stacking vec).
+    sigma : ndarray
+        Its steady state (d x d, unit trace).
+
+    Returns
+    -------
+    callable
+        Acts on d x d operators.
+
+    Raises
+    ------
+    ValueError
+        When ``L + |sigma><1|`` is singular to working precision: the steady
+        state is not unique.
+    """
+    n = generator.shape[0]
+    d = math.isqrt(n)
+    if d * d != n or generator.shape != (n, n):
+        raise ValueError(f"generator must be d^2 x d^2, got {generator.shape}")
+    trace_row = _vec(np.eye(d)).astype(complex)
+    m = np.asarray(generator, dtype=complex) + np.outer(_vec(sigma), trace_row)
+    with warnings.catch_warnings():
+        # A singular M is reported below through its condition number.
+        warnings.simplefilter("ignore", linalg.LinAlgWarning)
+        lu = linalg.lu_factor(m, check_finite=True)
+    with np.errstate(divide="ignore"):
+        rcond = 1.0 / np.linalg.cond(m, 1)
+    if not np.isfinite(rcond) or rcond < RCOND_MIN:
+        raise ValueError(
+            f"the generator's steady state is not unique (reciprocal condition number "
+            f"{rcond:.1e} of L + |sigma><1|)"
+        )
+
+    def apply(y: NDArray[Any]) -> NDArray[Any]:
+        return _unvec(linalg.lu_solve(lu, _vec(y).astype(complex)), d)
+
+    return apply
+
+
+def fornberg_weights(nodes: NDArray[np.float64], x0: float, order: int) -> NDArray[np.float64]:
+    """Finite-difference weights for the ``order``-th derivative at ``x0``.
+
+    Fornberg's algorithm (B. Fornberg, Math. Comp. 51, 699 (1988)).
+    """
+    n = len(nodes)
+    c = np.zeros((n, order + 1))
+    c1 = 1.0
+    c4 = nodes[0] - x0
+    c[0, 0] = 1.0
+    for i in range(1, n):
+        mn = min(i, order)
+        c2 = 1.0
+        c5 = c4
+        c4 = nodes[i] - x0
+        for j in range(i):
+            c3 = nodes[i] - nodes[j]
+            c2 *= c3
+            if j == i - 1:
+                for k in range(mn, 0, -1):
+                    c[i, k] = c1 * (k * c[i - 1, k - 1] - c5 * c[i - 1, k]) / c2
+                c[i, 0] = -c1 * c5 * c[i - 1, 0] / c2
+            for k in range(mn, 0, -1):
+                c[j, k] = (c4 * c[j, k] - k * c[j, k - 1]) / c3
+            c[j, 0] = c4 * c[j, 0] / c3
+        c1 = c2
+    return c[:, order]
+
+
+def one_sided_derivative(
+    func: Callable[[float], NDArray[Any]],
+    s: float = 1.0,
+    *,
+    step: float = FD_STEP,
+    n_nodes: int = FD_ORDER,
+) -> NDArray[Any]:
+    """d func / ds at ``s`` from the left: nodes s, s - h, ..., s - (n-1) h.
+
+    The truncation error is O(h^(n-1)); with the defaults (h = 2e-3, 7 nodes) it
+    is ~1e-16 times the 7th derivative's scale, below the rounding error
+    (~1e-16 / h).
+    """
+    nodes = s - step * np.arange(n_nodes, dtype=float)
+    w = fornberg_weights(nodes, s, 1)
+    return sum(wi * np.asarray(func(float(si))) for wi, si in zip(w, nodes, strict=True))
+
+
+def _end_order(schedule: Schedule) -> tuple[int, float, str]:
+    """(k, f^(k+1)(1), problem) for the schedule's end; problem is "" when fine."""
+    k_design = schedule.k_end
+    if schedule.family == "gevrey":
+        return 0, 0.0, "a gevrey schedule is flat to every order: no power law, no C_k"
+    if schedule.family == "linear":
+        k_design = 0
+    if not math.isfinite(float(k_design)) or float(k_design) != int(k_design):
+        return (
+            0,
+            math.nan,
+            f"k_end = {k_design} is not an integer: f^(k+1)(1) is infinite and the "
+            "coefficient involves a fractional power of L_1 (not computed)",
+        )
+    k = int(k_design)
+    d = schedule.derivatives(np.array([1.0]), k + 1)[:, 0]
+    scale = max(1.0, float(np.max(np.abs(d[: k + 2]))))
+    lower = d[1 : k + 1]
+    if lower.size and np.max(np.abs(lower)) > 1e-9 * scale:
+        j = int(np.argmax(np.abs(lower) > 1e-9 * scale)) + 1
+        return (
+            k,
+            math.nan,
+            f"the schedule is not flat to order {k} at the end (f^({j})(1) = {lower[j - 1]:.3g})",
+        )
+    fk1 = float(d[k + 1])
+    if not math.isfinite(fk1) or fk1 == 0.0:
+        return k, fk1, f"f^({k + 1})(1) = {fk1}: the leading term is not of order tf^-{k + 1}"
+    return k, fk1, ""
+
+
+def predict_from_generator(
+    generator: Callable[[float], NDArray[Any]],
+    steady_state: Callable[[float], NDArray[Any]],
+    schedule: Schedule,
+    *,
+    dsigma_ds: NDArray[Any] | None = None,
+    fd_step: float = FD_STEP,
+) -> Prediction:
+    """Predicted C_k from a generator ``L(s)`` and its steady state ``sigma(s)``.
+
+    Parameters
+    ----------
+    generator : callable
+        ``s -> L(s)``, a ``d^2 x d^2`` superoperator in rad/ns (column-stacking
+        vec); only ``L(1)`` is used.
+    steady_state : callable
+        ``s -> sigma(s)`` (d x d); evaluated at s = 1 and at a few s < 1 for the
+        derivative (unless ``dsigma_ds`` is given).
+    schedule : Schedule
+        The schedule; its end derivative f^(k+1)(1) enters.
+    dsigma_ds : ndarray, optional
+        dsigma/ds at s = 1 when known analytically.
+    fd_step : float
+        Step of the one-sided finite difference.
+
+    Returns
+    -------
+    Prediction
+    """
+    k, fk1, problem = _end_order(schedule)
+    if problem:
+        return Prediction(math.nan, k, fk1, "not available", problem)
+    l1 = np.asarray(generator(1.0))
+    sigma1 = np.asarray(steady_state(1.0))
+    evals = np.linalg.eigvals(l1)
+    nonzero = np.sort(np.abs(evals.real))[1:]
+    gap = float(nonzero[0]) if nonzero.size else math.nan
+    try:
+        inv = traceless_inverse(l1, sigma1)
+    except ValueError as exc:
+        return Prediction(math.nan, k, fk1, "not available", str(exc), liouvillian_gap=gap)
+    ds = (
+        np.asarray(dsigma_ds)
+        if dsigma_ds is not None
+        else one_sided_derivative(steady_state, 1.0, step=fd_step)
+    )
+    # Remove the trace of the difference quotient (zero up to rounding).
+    d = ds.shape[0]
+    x = ds - np.trace(ds) / d * np.eye(d)
+    for _ in range(k + 1):
+        x = inv(x)
+    lead = fk1 * x
+    coeff = 0.5 * trace_norm(lead)
+    return Prediction(
+        coefficient=coeff,
+        k=k,
+        end_derivative=fk1,
+        status="ok",
+        message=f"C_{k} = {coeff:.6g} ns^{k + 1} from L(1) (Liouvillian gap {gap:.3g} rad/ns)",
+        leading_deviation=lead,
+        liouvillian_gap=gap,
+    )
+
+
+def predicted_coefficient(system: Any, schedule: Schedule, **kwargs: Any) -> Prediction:
+    """Predicted C_k for a :class:`schedforge.dynamics.System` and a schedule.
+
+    Uses ``system.generator(s)`` and ``system.steady_state(s)``; a closed system
+    has no steady state to relax to, and systems above :data:`MAX_DIM` levels
+    are refused (dense generator); both come back as ``"not available"``.
+    Keyword arguments go to :func:`predict_from_generator`.
+    """
+    if getattr(system, "closed", False):
+        k, fk1, _ = _end_order(schedule)
+        return Prediction(
+            math.nan, k, fk1, "not available", "closed system: no steady state to relax to"
+        )
+    dim = int(getattr(getattr(system, "hamiltonian", None), "dim", 0) or 0)
+    if dim > MAX_DIM:
+        k, fk1, _ = _end_order(schedule)
+        return Prediction(
+            math.nan,
+            k,
+            fk1,
+            "not available",
+            f"the prediction uses the dense d^2 x d^2 generator, offered up to d = {MAX_DIM} "
+            f"(this system has d = {dim})",
+        )
+    return predict_from_generator(system.generator, system.steady_state, schedule, **kwargs)

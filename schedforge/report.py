@@ -1,0 +1,431 @@
+"""Analysis of a finished sweep folder and its self-contained HTML report.
+
+:func:`analyse_sweep_dir` is the hook the ``sweep`` command calls once the
+points are done (and what ``schedforge report DIR`` reruns).  From
+``DIR/points.csv`` and the spec it
+
+* predicts the leading coefficient C_k of every ideal schedule from the final
+  generator (:mod:`schedforge.prediction`),
+* detects the equilibrated regime and fits every schedule, ideal and realized
+  (:mod:`schedforge.analysis`), writing ``DIR/fit.csv``,
+* draws the figures (``DIR/plots/*.png``): error vs tf per schedule with the
+  fitted and predicted lines and the regime, local slopes, the schedules and
+  their derivatives, the gaps along s,
+* writes ``DIR/spec.toml`` (the spec, so that the report can be rebuilt) and
+  ``DIR/report.html``: one file with the plots embedded as base64 PNG, the
+  spec, the tables and the cautions.
+
+Every file is written atomically.
+"""
+
+from __future__ import annotations
+
+import base64
+import dataclasses
+import html
+import io
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from matplotlib.figure import Figure
+
+from . import __version__
+from .analysis import (
+    DEFAULT_FLOOR_FACTOR,
+    DEFAULT_REGIME_TOL,
+    DEFAULT_SLOPE_TOL,
+    ScalingFit,
+    fit_points,
+    format_fit_table,
+    read_points_csv,
+    write_fit_csv,
+)
+from .errors import InputError
+from .fileio import atomic_write_bytes, atomic_write_text
+from .plotting.scaling import (
+    plot_error_vs_tf,
+    plot_gap,
+    plot_local_slopes,
+    plot_schedule_derivatives,
+)
+from .prediction import Prediction, predicted_coefficient
+from .spec_model import Spec
+from .units import GHZ_TO_RAD_PER_NS
+
+__all__ = [
+    "CAUTION",
+    "SweepAnalysis",
+    "analyse_sweep_dir",
+    "load_sweep_spec",
+    "spec_to_toml",
+    "write_report",
+]
+
+#: The hardware caution shown in every report.
+CAUTION = (
+    "schedforge does not know your device's safety limits. Waveforms derived from this "
+    "study are meant for real, delicate hardware: before playing one, check it against "
+    "the device's documented limits (amplitude, slope, bandwidth, sample rate, timing) "
+    "and the lab's own practice, and start from conservative settings."
+)
+#: Largest Hilbert-space dimension for which the Liouvillian gap is drawn.
+GAP_PLOT_MAX_DIM = 16
+#: Points along s of the gap plot.
+GAP_POINTS = 65
+SPEC_NAME = "spec.toml"
+FIT_NAME = "fit.csv"
+REPORT_NAME = "report.html"
+PLOTS_DIR = "plots"
+
+
+@dataclass(frozen=True)
+class SweepAnalysis:
+    """What :func:`analyse_sweep_dir` produced.
+
+    Attributes
+    ----------
+    fits : tuple of ScalingFit
+    predictions : dict
+        Prediction per (family, k_start, k_end).
+    fit_csv, report_html, spec_toml : Path
+    plots : dict of str to Path
+        PNG files by figure name.
+    table : str
+        The plain-text summary table.
+    """
+
+    fits: tuple[ScalingFit, ...]
+    predictions: dict[tuple[str, float, float], Prediction]
+    fit_csv: Path
+    report_html: Path
+    spec_toml: Path
+    plots: dict[str, Path]
+    table: str
+
+
+# -- spec copy -------------------------------------------------------------------
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def spec_to_toml(spec: Spec) -> str:
+    """The spec as TOML text that :func:`schedforge.spec.load_spec` reads back.
+
+    Fields that are ``None`` (no such limit / section) are omitted.
+    """
+    data = dataclasses.asdict(spec)
+    lines = [
+        f"# spec copy written by schedforge {__version__}"
+        + (f" (from {spec.source})" if spec.source else ""),
+        f"version = {int(data['version'])}",
+    ]
+    for section in ("device", "problem", "bath", "schedule", "initial", "numerics", "sweep",
+                    "waveform"):  # fmt: skip
+        table = data.get(section)
+        if table is None:
+            continue
+        lines.append("")
+        lines.append(f"[{section}]")
+        for key, value in table.items():
+            if value is None:
+                continue
+            if section == "sweep" and isinstance(value, list | tuple) and not value:
+                continue
+            lines.append(f"{key} = {_toml_value(value)}")
+    return "\n".join(lines) + "\n"
+
+
+def load_sweep_spec(out_dir: str | Path) -> Spec:
+    """The spec saved in a sweep folder (``DIR/spec.toml``)."""
+    from .spec import load_spec
+
+    path = Path(out_dir) / SPEC_NAME
+    if not path.is_file():
+        raise InputError(
+            "DIR",
+            f"must be a finished sweep folder holding {SPEC_NAME}; {path} is missing "
+            "(rerun `schedforge sweep SPEC --out DIR`, which writes it)",
+        )
+    return load_spec(path)
+
+
+# -- numbers for the figures ------------------------------------------------------
+def _schedule_for(spec: Spec, family: str, k_start: float, k_end: float) -> Any:
+    from . import schedules
+
+    sched_spec = spec.with_schedule(family=family, k_start=k_start, k_end=k_end).schedule
+    build = getattr(schedules, "schedule_from_spec", None)
+    if build is not None:
+        return build(sched_spec)
+    return schedules.make_schedule(family, k_start=k_start, k_end=k_end)
+
+
+def _predictions(
+    spec: Spec, keys: Sequence[tuple[str, float, float]]
+) -> dict[tuple[str, float, float], Prediction]:
+    from .dynamics import System
+
+    system = System.from_spec(spec)
+    out = {}
+    for key in keys:
+        out[key] = predicted_coefficient(system, _schedule_for(spec, *key))
+    return out
+
+
+def _gap_along_s(spec: Spec) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    from .dynamics import System
+
+    system = System.from_spec(spec)
+    s = np.linspace(0.0, 1.0, GAP_POINTS)
+    spectral = []
+    for si in s:
+        levels = np.unique(system.eigen(float(si)).levels)
+        spectral.append((levels[1] - levels[0]) / GHZ_TO_RAD_PER_NS if levels.size > 1 else np.nan)
+    lgap = None
+    if not system.closed and system.dim <= GAP_PLOT_MAX_DIM:
+        lgap = np.array([system.liouvillian_gap(float(si)) for si in s]) / GHZ_TO_RAD_PER_NS
+    return s, np.array(spectral), lgap
+
+
+def _png(fig: Figure) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=110)
+    return buf.getvalue()
+
+
+def _make_figures(
+    spec: Spec, fits: Sequence[ScalingFit], keys: Sequence[tuple[str, float, float]]
+) -> dict[str, Figure]:
+    figs: dict[str, Figure] = {}
+    for fit in fits:
+        name = f"error_{fit.family}_k{fit.k_end:g}_{fit.variant}"
+        figs[name] = plot_error_vs_tf(fit)
+    figs["local_slopes"] = plot_local_slopes(fits)
+    figs["schedules"] = plot_schedule_derivatives([_schedule_for(spec, *k) for k in keys])
+    s, spectral, lgap = _gap_along_s(spec)
+    figs["gap"] = plot_gap(s, spectral, lgap)
+    return figs
+
+
+# -- HTML ---------------------------------------------------------------------------
+_CSS = """
+body { font-family: sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
+table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0 1.5em; }
+th, td { border: 1px solid #bbb; padding: 3px 7px; text-align: right; }
+th { background: #eee; }
+td.t { text-align: left; }
+.caution { border: 2px solid #c33; background: #fff3f3; padding: 0.8em 1em; }
+.plots img { max-width: 48%; margin: 0.5%; border: 1px solid #ddd; }
+img.wide { max-width: 80%; }
+pre { background: #f6f6f6; padding: 0.8em; overflow-x: auto; font-size: 0.85em; }
+.agrees { color: #060; } .disagrees { color: #a00; }
+"""
+
+
+def _fmt(v: Any) -> str:
+    if isinstance(v, float):
+        return "&ndash;" if not math.isfinite(v) else f"{v:.4g}"
+    return html.escape(str(v))
+
+
+def _html_table(
+    columns: Sequence[str], rows: Sequence[Mapping[str, Any]], text_cols: Sequence[str] = ()
+) -> str:
+    out = ["<table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in columns) + "</tr>"]
+    for r in rows:
+        cells = []
+        for c in columns:
+            cls = ' class="t"' if c in text_cols else ""
+            val = r.get(c, "")
+            if c == "verdict":
+                cls = f' class="t {html.escape(str(val)).replace(" ", "-")}"'
+            cells.append(f"<td{cls}>{_fmt(val)}</td>")
+        out.append("<tr>" + "".join(cells) + "</tr>")
+    out.append("</table>")
+    return "\n".join(out)
+
+
+def _img(name: str, png: bytes, wide: bool = False) -> str:
+    data = base64.b64encode(png).decode("ascii")
+    cls = ' class="wide"' if wide else ""
+    label = html.escape(name)
+    return f'<img{cls} alt="{label}" title="{label}" src="data:image/png;base64,{data}">'
+
+
+def render_report(
+    spec: Spec,
+    fits: Sequence[ScalingFit],
+    rows: Sequence[Mapping[str, Any]],
+    pngs: Mapping[str, bytes],
+    predictions: Mapping[tuple[str, float, float], Prediction],
+    *,
+    title: str = "schedforge sweep report",
+    notes: Sequence[str] = (),
+) -> str:
+    """The report as one self-contained HTML string (plots as base64 PNG)."""
+    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    fit_cols = ["family", "variant", "k_start", "k_end", "slope", "slope_stderr",
+                "expected_slope", "regime_tf_min_ns", "regime_tf_max_ns", "n_points",
+                "coefficient_fit", "coefficient_predicted", "verdict", "message"]  # fmt: skip
+    pred_rows = [
+        {"family": k[0], "k_start": k[1], "k_end": k[2], "C_k": p.coefficient,
+         "unit": f"ns^{p.k + 1}" if p.ok else "", "status": p.status, "message": p.message}
+        for k, p in sorted(predictions.items())
+    ]  # fmt: skip
+    point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
+                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s"]  # fmt: skip
+    error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f"<p>schedforge {__version__}, generated {now} (UTC). Spec: "
+        f"{html.escape(spec.source or 'given in Python')}.</p>",
+        f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
+    ]
+    parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    parts += [
+        "<h2>Scaling fits</h2>",
+        "<p>Verdict <i>agrees</i>: fitted slope within "
+        f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
+        "Points at or below the numerical floor "
+        f"({DEFAULT_FLOOR_FACTOR:g} &times; numerics.atol = "
+        f"{DEFAULT_FLOOR_FACTOR * spec.numerics.atol:.2g}) and failed points are never "
+        "fitted; the regime is the longest run of points at the large-tf end whose local "
+        f"slopes lie within a band of width {DEFAULT_REGIME_TOL} (widened by each slope's "
+        "noise). No slope is given where the regime was not reached. "
+        "coefficient_fit is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf over "
+        "the regime; coefficient_predicted is C<sub>k</sub> from the final generator.</p>",
+        _html_table(fit_cols, [f.row() for f in fits], ("family", "variant", "verdict", "message")),
+        "<h2>Predicted leading coefficients</h2>",
+        "<p>C<sub>k</sub> = ||(L<sub>1</sub><sup>+</sup>)<sup>k+1</sup> "
+        "d&sigma;/ds(1)||<sub>1</sub>"
+        " |f<sup>(k+1)</sup>(1)| / 2 (adiabatic expansion: Phys. Rev. A 93, 032118 (2016); "
+        "Phys. Rev. A 98, 022315 (2018)); L<sub>1</sub> in rad/ns, tf in ns.</p>",
+        _html_table(
+            ["family", "k_start", "k_end", "C_k", "unit", "status", "message"],
+            pred_rows,
+            ("family", "unit", "status", "message"),
+        ),
+        "<h2>Error vs anneal time</h2>",
+        '<div class="plots">' + "\n".join(error_imgs) + "</div>",
+        "<h2>Local slopes</h2>",
+        _img("local_slopes", pngs["local_slopes"], wide=True),
+        "<h2>Schedules and their derivatives</h2>",
+        _img("schedules", pngs["schedules"], wide=True),
+        "<h2>Gaps along the anneal</h2>",
+        _img("gap", pngs["gap"], wide=True),
+        "<h2>Points</h2>",
+        f"<details><summary>{len(rows)} points</summary>",
+        _html_table(point_cols, rows, ("family", "variant", "status")),
+        "</details>",
+        "<h2>Spec</h2>",
+        f"<pre>{html.escape(spec_to_toml(spec))}</pre>",
+        "</body></html>",
+    ]
+    return "\n".join(parts)
+
+
+def write_report(path: str | Path, text: str) -> Path:
+    """Write the HTML report atomically."""
+    p = Path(path)
+    atomic_write_text(p, text)
+    return p
+
+
+def analyse_sweep_dir(
+    out_dir: str | Path,
+    spec: Spec | None = None,
+    *,
+    rows: Sequence[Mapping[str, Any]] | None = None,
+    metric: str = "trace_distance",
+    progress: Callable[[str], None] | None = None,
+    title: str = "schedforge sweep report",
+    notes: Sequence[str] = (),
+) -> SweepAnalysis:
+    """Fit a finished sweep folder and write fit.csv, the plots, spec.toml and report.html.
+
+    Parameters
+    ----------
+    out_dir : path
+        The sweep folder (holding ``points.csv``).
+    spec : Spec, optional
+        The sweep's spec; read from ``DIR/spec.toml`` when omitted.
+    rows : sequence of mapping, optional
+        The points; read from ``DIR/points.csv`` when omitted.
+    metric : str
+        Error column to analyse.
+    progress : callable, optional
+        Receives one line of text per step.
+    title, notes : str
+        Report heading and extra paragraphs.
+
+    Returns
+    -------
+    SweepAnalysis
+    """
+    say = progress or (lambda _m: None)
+    folder = Path(out_dir)
+    if spec is None:
+        spec = load_sweep_spec(folder)
+    if rows is None:
+        rows = read_points_csv(folder / "points.csv")
+    rows = [dict(r) for r in rows]
+    spec_path = folder / SPEC_NAME
+    atomic_write_text(spec_path, spec_to_toml(spec))
+    keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
+    say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
+    predictions = _predictions(spec, keys)
+    from .dynamics import System
+
+    warnings = [f"Pre-flight warning: {w}" for w in System.from_spec(spec).preflight()]
+    fits = fit_points(
+        rows,
+        atol=spec.numerics.atol,
+        metric=metric,
+        predicted={k: p.coefficient for k, p in predictions.items()},
+    )
+    fit_path = write_fit_csv(folder / FIT_NAME, fits)
+    say(f"analysis: wrote {fit_path}; drawing figures")
+    figs = _make_figures(spec, fits, keys)
+    pngs = {name: _png(fig) for name, fig in figs.items()}
+    plot_dir = folder / PLOTS_DIR
+    plot_dir.mkdir(exist_ok=True)
+    plot_paths = {}
+    for name, data in pngs.items():
+        plot_paths[name] = plot_dir / f"{name}.png"
+        atomic_write_bytes(plot_paths[name], data)
+    text = render_report(
+        spec, fits, rows, pngs, predictions, title=title, notes=[*notes, *warnings]
+    )
+    report_path = write_report(folder / REPORT_NAME, text)
+    say(f"analysis: wrote {report_path}")
+    return SweepAnalysis(
+        fits=tuple(fits),
+        predictions=predictions,
+        fit_csv=fit_path,
+        report_html=report_path,
+        spec_toml=spec_path,
+        plots=plot_paths,
+        table=format_fit_table(fits),
+    )
