@@ -222,10 +222,19 @@ class _BrokenSchedule(Schedule):
 
 
 def test_numerical_failure_is_returned_not_raised() -> None:
-    result = simulate(System.from_spec(Spec()), _BrokenSchedule(), 2.0)
+    result = simulate(System.from_spec(Spec()), _BrokenSchedule(), 2.0, integrator="general")
     assert result.status == "failed"
     assert "DOP853" in result.message and np.isnan(result.trace_distance)
     assert np.isnan(result.to_dict()["ground_infidelity"])
+
+
+def test_eigenframe_failure_is_returned_not_raised() -> None:
+    # the fast integrator gives up at once and hands over to the general one,
+    # whose failure is returned with its message
+    result = simulate(System.from_spec(Spec()), _BrokenSchedule(), 2.0)
+    assert result.status == "failed"
+    assert np.isnan(result.trace_distance)
+    assert result.stats.get("fallback", "").startswith("the schedule returned non-finite")
 
 
 def test_integrators_plug_in_by_name() -> None:
