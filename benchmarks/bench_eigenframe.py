@@ -24,9 +24,11 @@ from __future__ import annotations
 import argparse
 import os
 import platform
+import sys
 import time
 from dataclasses import replace
 from datetime import UTC, datetime
+from pathlib import Path
 
 import numpy as np
 
@@ -34,7 +36,6 @@ from schedforge.dynamics import System, simulate
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
-from schedforge.units import GHZ_TO_RAD_PER_NS
 
 
 def _qubit() -> System:
@@ -59,44 +60,10 @@ def _timed(fn, *args, **kwargs):
     return out, time.perf_counter() - t0
 
 
-def brmesolve_trace_distance(system: System, k_end: int, tf: float) -> float:
-    """QuTiP brmesolve for the same system and schedule; trace distance to sigma(1)."""
-    import qutip
-
-    ham, bath = system.hamiltonian, system.bath
-    sched = make_schedule("beta", k_start=0, k_end=k_end)
-    dims = [[2] * ham.n_qubits, [2] * ham.n_qubits]
-
-    def s_of(t: float) -> float:
-        return float(sched(min(max(t / tf, 0.0), 1.0)))
-
-    def a_coef(t: float) -> float:
-        return -0.5 * GHZ_TO_RAD_PER_NS * float(ham.curves.A(s_of(t)))
-
-    def b_coef(t: float) -> float:
-        return 0.5 * GHZ_TO_RAD_PER_NS * float(ham.curves.B(s_of(t)))
-
-    h = [
-        [qutip.Qobj(ham.driver, dims=dims), a_coef],
-        [qutip.Qobj(ham.problem_matrix, dims=dims), b_coef],
-    ]
-
-    def spectrum(w: float) -> float:
-        return float(bath.gamma(np.array([w]))[0])
-
-    res = qutip.brmesolve(
-        h,
-        qutip.Qobj(system.initial_state(), dims=dims),
-        [0.0, tf],
-        a_ops=[[qutip.Qobj(a, dims=dims), spectrum] for a in bath.operators],
-        sec_cutoff=1e-6,
-        options={"method": "vern9", "atol": 1e-13, "rtol": 1e-11, "nsteps": 10**8},
-    )
-    dev = res.states[-1].full() - system.target_state()
-    return 0.5 * float(np.abs(np.linalg.eigvalsh(0.5 * (dev + dev.conj().T))).sum())
-
-
 def part_qutip(tf: float = 1e3, k_end: int = 2) -> None:
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+    from tests.qutip_reference import brmesolve_trace_distance
+
     system = _qubit()
     fast, t_fast = _timed(simulate, system, make_schedule("beta", k_end=k_end), tf)
     ref, t_ref = _timed(brmesolve_trace_distance, system, k_end, tf)

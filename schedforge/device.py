@@ -40,7 +40,7 @@ class DeviceCurves(ABC):
         """
         sa = np.asarray(s, dtype=float)
         out = self._derivatives(np.atleast_1d(sa).ravel(), int(order))
-        return out.reshape((2, order + 1) + sa.shape)
+        return out.reshape((2, order + 1, *sa.shape))
 
     def A(self, s: ArrayLike) -> NDArray[np.float64]:
         """Driver energy A(s) in GHz."""

@@ -77,6 +77,9 @@ DRESSING_MAX_DIM = 32
 #: free modes in one step; beyond it the cluster is left undressed and its amplitude
 #: counts wholly in the error estimate.
 CLUSTER_WORK_LIMIT = 2.0e6
+#: |tf lambda h| that a jump to longer steps gives every exponentially updated coherence
+#: (the Levin collocation amplifies rough forcing by about (m^2 / |tf lambda h|)^m).
+LEVIN_COMFORT = 30.0
 #: |tf lambda h| above which a coherence uses the exponential (Levin) update.
 LEVIN_THRESHOLD = 3.0
 
@@ -627,8 +630,9 @@ def _transient_rates(
     lam_safe = np.where(off, lam, 1.0)
     K2 = K**2
     mask1, den1, ratio1, mask2, den2, ratio2 = _coupling_ratios(K, fp, lam, labels)
-    t1 = np.where(mask1, K2[:, :, :, None] / np.where(mask1, den1, 1.0), 0.0).sum(axis=2)
-    t2 = np.where(mask2, K2[:, None, :, :] / np.where(mask2, den2, 1.0), 0.0).sum(axis=3)
+    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
+        t1 = np.where(mask1, K2[:, :, :, None] / np.where(mask1, den1, 1.0), 0.0).sum(axis=2)
+        t2 = np.where(mask2, K2[:, None, :, :] / np.where(mask2, den2, 1.0), 0.0).sum(axis=3)
     # populations: -K_ab^2 (e_a - e_b)^T (lam_ab - W)^(-1) (e_a - e_b), expanded in W / lam
     wd = np.einsum("naa->na", W)
     quad = wd[:, :, None] + wd[:, None, :] - W - np.swapaxes(W, 1, 2)
@@ -670,12 +674,14 @@ def _transient_dressing(
     intra1, intra2 = _intra_cluster(labels, d)
     num1 = A[:, None, :] * K.T[:, :, None]  # [a, c, b]: A_ab K_ca
     mask1 = mask1 & ~intra1
-    t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
+        t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
     # T2[a, c] = -sum_b A_ab fp K_bc / (lam_ac - lam_ab), c not in {a, b}
     den2 = lam[:, None, :] - lam[:, :, None]  # [a, b, c]
     mask2 = mask1.transpose(0, 2, 1) & ~intra2
     num2 = A[:, :, None] * K[None, :, :]  # [a, b, c]: A_ab K_bc
-    t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)
     coh = fp * (t1 + t2)
     coh[~off] = 0.0
     # populations: (lam_ab - W)^(-1) s_ab with s_ab = fp K_ba (e_a - e_b)
@@ -703,6 +709,23 @@ def _slowest_relaxation(W: NDArray[np.float64], pi: NDArray[np.float64]) -> floa
     sym = 0.5 * (sym + sym.T)
     ev = np.sort(-np.linalg.eigvalsh(sym))
     return float(max(ev[1], 0.0)) if d > 1 else 0.0
+
+
+def _clean_jump(lam_abs: NDArray[np.float64], h: float, h_limit: float = 0.05) -> float:
+    """The longest step up to ``h_limit`` that leaves no coherence half-way.
+
+    A coherence is well treated either resolved (|tf lambda h| <= 1) or by an exponential
+    (Levin) update with room to spare (|tf lambda h| >= ``LEVIN_COMFORT``); in between the
+    Levin collocation is poorly conditioned.  Returns ``h`` itself if nothing longer is clean.
+    """
+    lo = 1.0 / lam_abs
+    hi = LEVIN_COMFORT / lam_abs
+    candidates = np.concatenate([lo, hi * 1.01, [h_limit]])
+    candidates = np.sort(candidates[(candidates > h) & (candidates <= h_limit)])[::-1]
+    for cand in candidates:
+        if not np.any((lo < cand) & (cand < hi)):
+            return float(cand)
+    return h
 
 
 def integrate_eigenframe(
@@ -774,7 +797,8 @@ def integrate_eigenframe(
     h = 1e-3
     x = 0.0
     free_err = 0.0
-    no_jump_until = -1.0
+    jump_limit = 0.05  # longest jump to try; shrinks after a failed jump
+    jump_pause = 0  # accepted steps to wait before trying another jump
     last_frame = frame0
     last_fd = np.array([[f0[0]], [f0[1]]])
     last_labels = None
@@ -793,14 +817,11 @@ def integrate_eigenframe(
             return fail(f"step limit {max_steps} reached at x = {x:.6g}")
         next_knot = next(k for k in knots if k > x + 1e-15)
         jumped = False
-        if allow_levin and x >= no_jump_until:
+        if allow_levin and jump_pause == 0:
             # try a step long enough for the fast coherences to take exponential updates
-            lam_abs = tf * np.abs(last_frame.lam[-1][off])
-            fast = lam_abs[lam_abs * 0.05 >= LEVIN_THRESHOLD]
-            if fast.size:
-                h_jump = 1.25 * LEVIN_THRESHOLD / float(fast.min())
-                if h < h_jump:
-                    h, jumped = h_jump, True
+            h_jump = _clean_jump(tf * np.abs(last_frame.lam[-1][off]), h, jump_limit)
+            if h_jump > h:
+                h, jumped = h_jump, True
         remnant = next_knot - x - h
         if 0.0 < remnant < 0.05 * h:
             h = 0.5 * (next_knot - x)
@@ -815,8 +836,13 @@ def integrate_eigenframe(
         stats["frame_evals"] += xs.size
         overlaps = np.abs(np.einsum("ia,nia->na", Vref, fr.V))
         if np.min(overlaps) < 0.7:  # the frame turned too far within the step
+            if h < 1e-9:
+                return fail(
+                    f"the eigenframe is not continuous near x = {x:.6g}: degenerate levels "
+                    "whose eigenvectors the Hamiltonian's derivative does not separate"
+                )
             h *= 0.3
-            no_jump_until = x + 1e-15
+            jump_pause = max(jump_pause, 1)
             stats["rejected"] += 1
             continue
         lam_nodes = tf * fr.lam
@@ -865,7 +891,8 @@ def integrate_eigenframe(
             fac = 0.2 if not np.isfinite(res.err) else max(0.2, 0.9 * res.err ** (-1.0 / order))
             h *= fac
             if jumped:
-                no_jump_until = x + 4.0 * h / fac
+                jump_limit = max(0.25 * h / fac, 1e-12)
+                jump_pause = 4
             stats["rejected"] += 1
             continue
         # accept the step
@@ -902,6 +929,9 @@ def integrate_eigenframe(
             free_err = free_err * math.exp(-min(relax * h, 700.0)) + eps**2 * amp + undressed
             stats["exponential_steps"] += 1
         stats["steps"] += 1
+        jump_pause = max(jump_pause - 1, 0)
+        if jumped:
+            jump_limit = 0.05
         degenerate = np.minimum(fr.min_level_gap[1:], fr.min_bohr_gap[1:]) <= degeneracy_tol
         if np.mean(degenerate) >= 0.5:  # most of the step, not a point it touches
             stats["degenerate_length"] += h
@@ -1102,6 +1132,7 @@ def eigenframe_integrator(
     V1 = out["frame"].V[0]
     deviation = V1 @ dev_eig @ V1.T
     deviation = 0.5 * (deviation + deviation.conj().T)
+    stats["trace_error"] = float(abs(np.trace(deviation)))
     rho = system.target_state() + deviation
     return IntegrationOutcome(deviation, rho, "ok", "", stats)
 
