@@ -737,7 +737,7 @@ def integrate_eigenframe(
     rtol: float = 1e-10,
     atol: float = 1e-14,
     stages: int = DEFAULT_STAGES,
-    max_steps: int = 20000,
+    max_steps: int = 100000,
     h_max: float = 0.25,
     mode: str = "auto",
     degeneracy_tol: float = 0.0,
