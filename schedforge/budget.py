@@ -33,7 +33,7 @@ import numpy as np
 
 from .errors import InputError
 from .prediction import Prediction, predicted_coefficient
-from .schedules import Schedule
+from .schedules import Schedule, schedule_for_point
 from .spec_model import Spec
 
 __all__ = [
@@ -143,16 +143,6 @@ def candidate_schedules(
     return sorted(set(out))
 
 
-def _schedule(spec: Spec, family: str, k_start: float, k_end: float) -> Schedule:
-    from . import schedules
-
-    sched_spec = spec.with_schedule(family=family, k_start=k_start, k_end=k_end).schedule
-    build = getattr(schedules, "schedule_from_spec", None)
-    if build is not None:
-        return build(sched_spec)
-    return schedules.make_schedule(family, k_start=k_start, k_end=k_end)
-
-
 def regime_start_ns(
     schedule: Schedule,
     gap_of_s: Callable[[float], float],
@@ -236,7 +226,7 @@ def plan_budget(
         if family == "gevrey":
             warnings.append("gevrey schedules have no power law: no budget prediction")
             continue
-        sched = _schedule(spec, family, k_start, k_end)
+        sched = schedule_for_point(spec, family, k_start, k_end)
         pred: Prediction = predicted_coefficient(system, sched)
         if not pred.ok:
             cands.append(

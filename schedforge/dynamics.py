@@ -43,7 +43,7 @@ from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eige
 from .device import make_device_curves
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
-from .schedules import Schedule
+from .schedules import Schedule, schedule_from_spec
 from .units import GHZ_TO_RAD_PER_NS, beta_from_mk
 
 __all__ = [
@@ -623,17 +623,6 @@ def simulate(
     )
 
 
-def _schedule_for(sched_spec: Any) -> Schedule:
-    from . import schedules
-
-    builder = getattr(schedules, "schedule_from_spec", None)
-    if builder is not None:
-        return builder(sched_spec)
-    return schedules.make_schedule(
-        sched_spec.family, k_start=sched_spec.k_start, k_end=sched_spec.k_end
-    )
-
-
 def simulate_spec(
     spec: Any,
     *,
@@ -667,7 +656,7 @@ def simulate_spec(
     }
     sched_spec = replace(spec.schedule, **changes)
     system = System.from_spec(spec)
-    schedule = _schedule_for(sched_spec)
+    schedule = schedule_from_spec(sched_spec)
     if variant == "realized":
         if spec.waveform is None:
             raise InputError(

@@ -54,6 +54,7 @@ from .plotting.scaling import (
     plot_schedule_derivatives,
 )
 from .prediction import Prediction, predicted_coefficient
+from .schedules import schedule_for_point
 from .spec_model import Spec
 from .units import GHZ_TO_RAD_PER_NS
 
@@ -169,16 +170,6 @@ def load_sweep_spec(out_dir: str | Path) -> Spec:
 
 
 # -- numbers for the figures ------------------------------------------------------
-def _schedule_for(spec: Spec, family: str, k_start: float, k_end: float) -> Any:
-    from . import schedules
-
-    sched_spec = spec.with_schedule(family=family, k_start=k_start, k_end=k_end).schedule
-    build = getattr(schedules, "schedule_from_spec", None)
-    if build is not None:
-        return build(sched_spec)
-    return schedules.make_schedule(family, k_start=k_start, k_end=k_end)
-
-
 def _predictions(
     spec: Spec, keys: Sequence[tuple[str, float, float]]
 ) -> dict[tuple[str, float, float], Prediction]:
@@ -187,7 +178,7 @@ def _predictions(
     system = System.from_spec(spec)
     out = {}
     for key in keys:
-        out[key] = predicted_coefficient(system, _schedule_for(spec, *key))
+        out[key] = predicted_coefficient(system, schedule_for_point(spec, *key))
     return out
 
 
@@ -220,7 +211,7 @@ def _make_figures(
         name = f"error_{fit.family}_k{fit.k_end:g}_{fit.variant}"
         figs[name] = plot_error_vs_tf(fit)
     figs["local_slopes"] = plot_local_slopes(fits)
-    figs["schedules"] = plot_schedule_derivatives([_schedule_for(spec, *k) for k in keys])
+    figs["schedules"] = plot_schedule_derivatives([schedule_for_point(spec, *k) for k in keys])
     s, spectral, lgap = _gap_along_s(spec)
     figs["gap"] = plot_gap(s, spectral, lgap)
     return figs

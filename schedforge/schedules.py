@@ -58,6 +58,7 @@ __all__ = [
     "PolySchedule",
     "Schedule",
     "make_schedule",
+    "schedule_for_point",
     "schedule_from_spec",
 ]
 
@@ -914,4 +915,11 @@ def schedule_from_spec(sched: ScheduleSpec) -> Schedule:
         k_end=sched.k_end,
         tail=sched.tail,
         points=sched.points,
+    )
+
+
+def schedule_for_point(spec: Any, family: str, k_start: float, k_end: float) -> Schedule:
+    """The schedule of one point of a study: ``spec``'s shape parameters with these coordinates."""
+    return schedule_from_spec(
+        spec.with_schedule(family=family, k_start=k_start, k_end=k_end).schedule
     )
