@@ -871,7 +871,8 @@ def integrate_eigenframe(
             c0 = np.where(leaving, c0 + A0, c0)
             A0 = np.where(leaving, 0.0, A0)
             p0 = p0 + pop_d
-        res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol)
+        with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
+            res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol)
         if entering.any():
             # split entering coherences into slow part and dressed free modes
             pop_d = np.zeros(d)
