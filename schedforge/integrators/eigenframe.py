@@ -29,9 +29,16 @@ slow solution, not by tf:
   exact, so the collocation only has to resolve the slow forcing.
 
 The free oscillations (transients from the start of the anneal) feed back into
-the other equations only through the frame rotation, an effect of relative size
-|f' K| / (tf |omega|) which is neglected; it matters only at small tf, where the
-general integrator is cheap and is used instead (see :func:`eigenframe_applicable`).
+the other equations through the frame rotation.  They are carried as amplitudes
+A_ab of modes dressed to first order in |f' K| / |tf (lambda_ab - lambda_m)| (the
+components they induce elsewhere), with the second-order (adiabatic-elimination)
+shift of their rates; modes nearly resonant with a coupled partner are propagated
+together by a fourth-order Magnus method (Blanes, Casas & Ros, 2000).  What this
+leaves out is estimated along the way; when the estimate exceeds ``FREE_MODE_RTOL``
+of the result, the point is redone with every oscillation resolved (short
+anneals) or by the general integrator, or returned with a warning when neither is
+affordable.  Levels that are degenerate at a point (s = 0 of a multi-qubit
+driver) are rotated to diagonalise dH/ds, the limit of the eigenbasis.
 
 Local errors are estimated from the spectral tail (the highest Legendre
 coefficient) of the collocation polynomials and steps are adapted to
