@@ -408,7 +408,9 @@ def test_analysis_hook_called_once_after_complete_sweep(tmp_path, write_spec, ru
     import schedforge.cli.sweep as cli_sweep
 
     seen = []
-    monkeypatch.setattr(cli_sweep, "_analysis_hook", lambda: lambda out, spec: seen.append(out))
+    monkeypatch.setattr(
+        cli_sweep, "_analysis_hook", lambda: lambda out, spec, **kw: seen.append(out)
+    )
     spec_path = _spec_file(write_spec, tf=(2.0,))
     out = tmp_path / "out"
     code, _, err = run_cli("sweep", spec_path, "--out", out, "--executor", "serial", "--quiet")

@@ -11,8 +11,6 @@ complete sweep to add the fits and the report to ``DIR`` (not with
 from __future__ import annotations
 
 import argparse
-import importlib
-import importlib.util
 import sys
 from pathlib import Path
 from typing import Any
@@ -22,9 +20,6 @@ from ..executors import EXECUTOR_KINDS, make_executor
 from .options import add_spec_argument, positive_int
 
 __all__ = ["register", "run"]
-
-_ANALYSIS_MODULE = "schedforge.analysis"
-_ANALYSIS_HOOK = "analyse_sweep_dir"
 
 
 def register(subparsers: Any) -> None:
@@ -91,9 +86,9 @@ def _executor_kind(args: argparse.Namespace) -> str:
 
 
 def _analysis_hook() -> Any:
-    if importlib.util.find_spec(_ANALYSIS_MODULE) is None:
-        return None
-    return getattr(importlib.import_module(_ANALYSIS_MODULE), _ANALYSIS_HOOK, None)
+    from ..analysis import analyse_sweep_dir
+
+    return analyse_sweep_dir
 
 
 def run(args: argparse.Namespace) -> int:
@@ -144,5 +139,5 @@ def run(args: argparse.Namespace) -> int:
         )
     hook = None if args.points_only else _analysis_hook()
     if hook is not None:
-        hook(out, spec)
+        hook(out, spec, echo=not args.quiet)
     return 0
