@@ -51,6 +51,7 @@ __all__ = [
     "IntegrationOutcome",
     "SimulationResult",
     "System",
+    "curve_warnings",
     "default_integrator",
     "get_integrator",
     "register_integrator",
@@ -321,6 +322,38 @@ class System:
         return f"System({self.hamiltonian!r}, {kind}, initial={self.initial!r})"
 
 
+def curve_warnings(curves: Any, k_end: float) -> list[str]:
+    """Data-quality warnings of tabulated device curves for a schedule flat to order k_end.
+
+    Parameters
+    ----------
+    curves : DeviceCurves
+        Analytic curves have none; a :class:`~schedforge.device_table.TabulatedCurves`
+        gives its table's warnings (too coarse, too noisy) and what
+        :meth:`~schedforge.device_table.TabulatedCurves.smoothness_warnings` says for
+        ``k_end``.
+    k_end : float
+        Designed flatness at the end (``inf`` for a schedule flat to every order).
+
+    Returns
+    -------
+    list of str
+    """
+    check = getattr(curves, "smoothness_warnings", None)
+    if check is None:
+        return []
+    k = float(k_end)
+    if math.isfinite(k):
+        return list(check(k))
+    continuity = int(curves.continuity)
+    out = list(check(max(continuity - 1, 0)))
+    out.append(
+        f"the curves are C^{continuity}: a schedule flat to every order (k_end = inf) keeps "
+        f"the error law only up to k_end = {max(continuity - 1, 0)} on them"
+    )
+    return out
+
+
 def _check_density_matrix(rho: NDArray[Any], dim: int) -> NDArray[np.complex128]:
     rho = np.asarray(rho, dtype=complex)
     if rho.shape != (dim, dim):
@@ -484,7 +517,14 @@ Integrator = Callable[..., IntegrationOutcome]
 #: Registered integrators by name: ``fn(system, schedule, tf_ns, *, rtol, atol)``.
 INTEGRATORS: dict[str, Integrator] = {}
 
-_BUILTIN_MODULES = ("schedforge.integrators.general", "schedforge.integrators.eigenframe")
+_BUILTIN_MODULES = (
+    "schedforge.integrators.general",
+    "schedforge.integrators.eigenframe",
+    "schedforge.integrators.held",
+)
+
+#: The integrator of piecewise-constant schedules (unfiltered holds), whatever was asked.
+HELD_INTEGRATOR = "held"
 
 
 def register_integrator(name: str, fn: Integrator) -> None:
@@ -559,6 +599,9 @@ def simulate(
         Anneal time in ns (> 0).
     integrator : str
         A registered integrator name or ``"auto"`` (see :func:`default_integrator`).
+        A schedule that jumps (``schedule.jumps``, an unfiltered hold) always goes
+        to the exact ``"held"`` propagator; a warning says so when another
+        integrator was named.
     rtol, atol : float
         Tolerances passed to the integrator (``atol`` applies to the deviation
         from the instantaneous steady state, whose entries are the small
@@ -588,6 +631,17 @@ def simulate(
             raise InputError(name, f"must be a finite number > 0, got {val!r}")
     start = time.perf_counter()
     warnings = tuple(system.preflight())
+    if getattr(schedule, "jumps", False) and integrator != HELD_INTEGRATOR:
+        # s(t) jumps (an unfiltered hold): only the exact piecewise-constant propagator
+        # handles it; the others follow a continuous s(t) and would miss the jumps
+        get_integrator(integrator, system)  # an unknown name is still bad input
+        if integrator != "auto":
+            warnings += (
+                "the schedule jumps (an unfiltered hold): it is propagated exactly by the "
+                f'"{HELD_INTEGRATOR}" integrator instead of {integrator!r}, which follows a '
+                "continuous s(t)",
+            )
+        integrator = HELD_INTEGRATOR
     name, fn = get_integrator(integrator, system)
     try:
         outcome = fn(system, schedule, float(tf_ns), rtol=float(rtol), atol=float(atol))
@@ -642,7 +696,12 @@ def simulate_spec(
         Override the spec's schedule coordinates.
     variant : {"ideal", "realized"}
         ``"realized"`` simulates the waveform the hardware plays
-        (:func:`schedforge.waveform.realize` with the spec's ``[waveform]``).
+        (:func:`schedforge.waveform.realize` with the spec's ``[waveform]``); an
+        unfiltered hold (piecewise constant) is propagated exactly by the
+        ``"held"`` integrator.
+
+    The result's ``warnings`` include the data-quality warnings of tabulated
+    device curves (:func:`curve_warnings`).
     """
     changes = {
         key: val
@@ -665,14 +724,8 @@ def simulate_spec(
         from .waveform import realize
 
         realized = realize(schedule, sched_spec.tf_ns, spec.waveform, system.hamiltonian.curves)
-        played = getattr(realized, "schedule", realized)
-        if getattr(played, "jumps", False):  # integrators follow a continuous s(t)
-            raise InputError(
-                "waveform.bandwidth_mhz",
-                "is needed to simulate held samples: an unfiltered hold jumps at every sample "
-                "and the integrators do not handle jumps (a real output is band-limited)",
-            )
-        run_schedule = played
+        # an unfiltered hold jumps: simulate() propagates it exactly (integrators/held.py)
+        run_schedule = getattr(realized, "schedule", realized)
     elif variant == "ideal":
         run_schedule = schedule
     else:
@@ -686,6 +739,7 @@ def simulate_spec(
         rtol=num.rtol,
         atol=num.atol,
     )
+    table = curve_warnings(system.hamiltonian.curves, schedule.k_end)
     # report the designed coordinates, whatever the played schedule calls itself
     return replace(
         result,
@@ -693,4 +747,5 @@ def simulate_spec(
         k_start=float(schedule.k_start),
         k_end=float(schedule.k_end),
         variant=variant,
+        warnings=result.warnings + tuple(f"device curves: {w}" for w in table),
     )

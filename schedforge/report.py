@@ -387,9 +387,14 @@ def analyse_sweep_dir(
     keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
     say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
     predictions = _predictions(spec, keys)
-    from .dynamics import System
+    from .dynamics import System, curve_warnings
 
-    warnings = [f"Pre-flight warning: {w}" for w in System.from_spec(spec).preflight()]
+    system = System.from_spec(spec)
+    warnings = [f"Pre-flight warning: {w}" for w in system.preflight()]
+    for k_end in sorted({k[2] for k in keys}):  # tabulated device curves: data quality
+        for w in curve_warnings(system.hamiltonian.curves, k_end):
+            if f"Device curves: {w}" not in warnings:
+                warnings.append(f"Device curves: {w}")
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,

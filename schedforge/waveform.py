@@ -86,8 +86,9 @@ A Gaussian-filtered waveform has no knots.  A polyline and a single-pole
 output are continuous with kinks at their knots (integrators step onto them;
 a single-pole output has one per sample, which is slow for long anneals).  An
 unfiltered hold jumps at every sample: ``RealizedSchedule.jumps`` is True and
-:meth:`RealizedSchedule.jump_points` lists the jumps, which an integrator of
-the deviation from the instantaneous steady state would have to add.
+:meth:`RealizedSchedule.jump_points` lists the jumps.  Such a waveform is
+piecewise constant, and ``schedforge.integrators.held`` propagates it exactly
+from jump to jump (``simulate`` sends every jumping schedule there).
 
 Caution
 -------

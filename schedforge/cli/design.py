@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from ..device import make_device_curves
+from ..dynamics import curve_warnings
 from ..errors import InputError
 from ..fileio import atomic_write_bytes
 from ..samples import DEFAULT_POINTS, sample_schedule, samples_metadata, write_samples_csv
@@ -125,4 +126,6 @@ def run(args: argparse.Namespace) -> int:
         )
     if not schedule.is_monotone():
         print("warning: this schedule is not monotone in t", file=sys.stderr)
+    for w in curve_warnings(curves, schedule.k_end):
+        print(f"warning: device curves: {w}", file=sys.stderr)
     return 0

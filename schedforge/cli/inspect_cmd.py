@@ -9,6 +9,8 @@ from typing import Any
 
 import numpy as np
 
+from ..device import make_device_curves
+from ..dynamics import curve_warnings
 from ..schedules import Schedule, schedule_from_spec
 from ..spec import load_spec
 from .options import add_spec_argument
@@ -32,7 +34,7 @@ def register(subparsers: Any) -> None:
         "--json",
         action="store_true",
         help="print a JSON object (keys start_derivatives, end_derivatives, flat_start, "
-        "flat_end, monotone, ...) instead of a table",
+        "flat_end, monotone, curve_warnings, ...) instead of a table",
     )
     parser.set_defaults(handler=run)
 
@@ -125,14 +127,18 @@ def _format_table(report: dict[str, Any]) -> str:
     lines.append(f"flat end:   first {report['flat_end']} derivative(s) vanish")
     lines.append(f"monotone:   {'yes' if report['monotone'] else 'NO'}")
     lines.extend(f"note: {note}" for note in report["notes"])
+    lines.extend(f"warning: device curves: {w}" for w in report.get("curve_warnings", ()))
     return "\n".join(lines)
 
 
 def run(args: argparse.Namespace) -> int:
     """Print the inspection report of the spec's schedule."""
     spec = load_spec(args.spec)
-    report = inspect_schedule(schedule_from_spec(spec.schedule))
+    schedule = schedule_from_spec(spec.schedule)
+    report = inspect_schedule(schedule)
     report["tf_ns"] = spec.schedule.tf_ns
+    # data-quality warnings of a tabulated [device] curves file (none for analytic curves)
+    report["curve_warnings"] = curve_warnings(make_device_curves(spec.device), schedule.k_end)
     if args.json:
         print(json.dumps(report, indent=2, allow_nan=False))
     else:
