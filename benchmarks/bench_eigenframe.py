@@ -13,7 +13,8 @@ Parts:
 - ``general``: the same point with the general (lab-frame DOP853) integrator.
 - ``tf``: eigenframe wall time per point at tf = 1e2 .. 1e5 ns and t(1e5) / t(1e2).
 - ``qubits``: wall time per point against qubit count 1..8 at tf = 1e3 ns (invented,
-  fully connected Ising instances with seeded random fields and couplings).
+  fully connected Ising instances with seeded random fields and couplings), each point
+  in a child process stopped after 5 minutes.
 - ``sweep``: 5 values of k_end x 17 tf from 1e1 to 1e5 ns for the driven qubit, serially.
 
 Each part prints its lines; copy them to benchmarks/RESULTS.md with date and machine.
@@ -24,6 +25,7 @@ from __future__ import annotations
 import argparse
 import os
 import platform
+import subprocess
 import sys
 import time
 from dataclasses import replace
@@ -103,20 +105,33 @@ def part_tf(k_end: int = 2, repeats: int = 3) -> None:
     print(f"tf      t(1e5)/t(1e2) = {times[1e5] / times[1e2]:.2f}")
 
 
-def part_qubits(tf: float = 1e3, max_qubits: int = 8, limit_s: float = 900.0) -> None:
+def qubit_point(n: int, tf: float = 1e3) -> None:
+    """One point of the ``qubits`` part (run in a child process, under a time limit)."""
     spec = load_spec("builtin:driven-qubit")
     f = make_schedule("beta", k_end=2)
+    system = System.from_spec(replace(spec, problem=_instance(n)))
+    t0 = time.perf_counter()
+    system.preflight()
+    t_pre = time.perf_counter() - t0
+    r, w = _timed(simulate, system, f, tf)
+    est = r.stats.get("free_mode_error_estimate")
+    print(
+        f"qubits  n={n}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
+        f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
+        f"trace distance {r.trace_distance:.12e}, free-mode error estimate "
+        f"{'n/a' if est is None else f'{est:.2g}'}, "
+        f"warning: {'yes' if any('estimated error' in w for w in r.warnings) else 'no'}",
+        flush=True,
+    )
+
+
+def part_qubits(max_qubits: int = 8, limit_s: float = 300.0) -> None:
     for n in range(1, max_qubits + 1):
-        system = System.from_spec(replace(spec, problem=_instance(n)))
-        t0 = time.perf_counter()
-        system.preflight()
-        t_pre = time.perf_counter() - t0
-        r, w = _timed(simulate, system, f, tf)
-        print(
-            f"qubits  n={n}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
-            f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
-            f"trace distance {r.trace_distance:.3e}"
-        )
+        cmd = [sys.executable, __file__, "--qubit-point", str(n)]
+        try:
+            subprocess.run(cmd, check=False, timeout=limit_s)
+        except subprocess.TimeoutExpired:
+            print(f"qubits  n={n}: stopped after {limit_s:.0f} s", flush=True)
 
 
 def part_sweep() -> None:
@@ -145,7 +160,11 @@ PARTS = {
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--parts", nargs="+", choices=sorted(PARTS), default=list(PARTS))
+    parser.add_argument("--qubit-point", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.qubit_point is not None:
+        qubit_point(args.qubit_point)
+        return
     print(
         f"# {datetime.now(UTC).isoformat(timespec='seconds')}  {platform.machine()} "
         f"{os.cpu_count()} cores  python {platform.python_version()}  "

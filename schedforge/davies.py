@@ -454,6 +454,49 @@ class DaviesGenerator:
             self.apply_eigen(self.eig.to_eigen(np.asarray(rho, dtype=complex)))
         )
 
+    # -- structure ---------------------------------------------------------------
+    def assembly_entries(self) -> int:
+        """Stored entries of the sparse (d^2, d^2) form, before it is built.
+
+        Large groups of equal Bohr frequencies (a degenerate driver at s = 0) enter
+        as Kronecker products of dense d x d operators, whose entries grow as d^4;
+        callers check this before asking for :meth:`spectrum` at large d.
+        """
+        d = self.dim
+        if self.bath is None:
+            return d**2
+        pairs = int(self._t.size) if hasattr(self, "_t") else d**2
+        groups = sum(int(lop.nnz) ** 2 for lop in getattr(self, "_large", ()))
+        anticommutator = 2 * d * int(np.count_nonzero(self._k)) if hasattr(self, "_k") else d**2
+        lamb = 0 if self._lamb is None else 2 * d * int(np.count_nonzero(self._lamb))
+        return pairs + groups + anticommutator + lamb
+
+    def pauli_structure(self) -> tuple[NDArray[np.float64], NDArray[np.complex128]] | None:
+        """The decoupled form of a generator with distinct levels and Bohr frequencies.
+
+        Returns
+        -------
+        (W, lam) or None
+            ``W`` (d, d), the Pauli rate matrix of the populations in the eigenbasis
+            (``p' = W p``, columns summing to zero); ``lam`` (d, d), the complex rate
+            of each coherence (``x_ab' = lam_ab x_ab``; its diagonal is not used).
+            None when levels or Bohr frequencies coincide (the coherences couple)
+            or for a closed system.
+        """
+        if not self._generic:
+            return None
+        W = np.array(self._rates, dtype=float)
+        W[np.diag_indices(self.dim)] += np.diagonal(self._coef).real
+        return W, np.array(self._coef, dtype=complex)
+
+    def sparse_eigen(self, *, coherent: bool = True) -> sparse.csr_matrix:
+        """The generator as a sparse (d^2, d^2) matrix in the eigenbasis.
+
+        Row-major vectorisation: element (a, c) of X is entry ``a d + c``.
+        ``coherent=False`` leaves out the ``-i [H, .]`` part.
+        """
+        return self._sparse_eigen_rowmajor(coherent=coherent)
+
     # -- superoperators ----------------------------------------------------------
     def _sparse_eigen_rowmajor(self, *, coherent: bool = True) -> sparse.csr_matrix:
         """The generator in the eigenbasis, row-major vec (internal helper)."""

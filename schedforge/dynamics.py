@@ -63,6 +63,8 @@ __all__ = [
 #: (the spectrum of L(s) costs more for larger systems).
 PREFLIGHT_POINTS = {8: 33, 32: 17}
 PREFLIGHT_POINTS_LARGE = 9
+#: Largest sparse generator (stored entries) the pre-flight scan assembles at one s.
+PREFLIGHT_MAX_ENTRIES = 20_000_000
 
 
 def _preflight_points(dim: int) -> int:
@@ -260,8 +262,23 @@ class System:
                 'coupling = "z" when A(1) = 0. Use coupling "x" or "y", or device curves '
                 "with A(1) > 0",
             )
-        gaps = np.array([final.gap if s == 1.0 else self.liouvillian_gap(float(s)) for s in grid])
-        k = int(np.argmin(gaps))
+        gaps = np.full(grid.size, np.nan)
+        skipped = []
+        for i, s in enumerate(grid):
+            if s == 1.0:
+                gaps[i] = final.gap
+            elif self.davies(float(s)).assembly_entries() > PREFLIGHT_MAX_ENTRIES:
+                skipped.append(float(s))  # degenerate Bohr groups: d^4 entries
+            else:
+                gaps[i] = self.liouvillian_gap(float(s))
+        if skipped:
+            warnings.append(
+                "the Liouvillian gap was not scanned at s = "
+                + ", ".join(f"{s:.3g}" for s in skipped)
+                + f": degenerate levels there make the Davies generator of this {self.dim}-level "
+                "system too large to assemble (the other points were scanned)"
+            )
+        k = int(np.nanargmin(gaps))
         self._diagnostics = {
             "liouvillian_gap_final_ghz": final.gap / GHZ_TO_RAD_PER_NS,
             "liouvillian_gap_min_ghz": float(gaps[k]) / GHZ_TO_RAD_PER_NS,

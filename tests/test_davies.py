@@ -185,6 +185,32 @@ def test_gap_agrees_with_dense_eigenvalues() -> None:
         assert system.spectrum(s).gap == pytest.approx(re[1], rel=1e-8)
 
 
+def test_assembly_entries_counts_the_sparse_form() -> None:
+    # at s = 0 the 3-qubit driver is degenerate: Bohr groups enter as Kronecker products
+    system = _system(PROBLEMS["3q-uniform"])
+    for s in (0.0, 0.7):
+        gen = system.davies(s)
+        assert gen.assembly_entries() >= gen.sparse_eigen(coherent=False).nnz
+
+
+def test_preflight_skips_generators_too_large_to_assemble(monkeypatch) -> None:
+    import schedforge.dynamics as dyn
+
+    full = _system(PROBLEMS["3q-uniform"])
+    full.preflight()
+    s_min = full.diagnostics["s_at_liouvillian_gap_min"]
+    limit = full.davies(0.0).assembly_entries() - 1  # s = 0 (degenerate) is over the limit
+    assert all(full.davies(s).assembly_entries() <= limit for s in (0.1, 0.5, 1.0))
+    monkeypatch.setattr(dyn, "PREFLIGHT_MAX_ENTRIES", limit)
+    system = _system(PROBLEMS["3q-uniform"])
+    warnings = system.preflight()
+    assert any("not scanned at s = 0:" in w for w in warnings)
+    if s_min != 0.0:  # the scan of the other points is unchanged
+        assert system.diagnostics["liouvillian_gap_min_ghz"] == pytest.approx(
+            full.diagnostics["liouvillian_gap_min_ghz"], rel=1e-12
+        )
+
+
 def test_non_unique_final_steady_state_is_refused() -> None:
     # Z coupling commutes with H(1) = (B/2) H_problem when A(1) = 0: populations never relax.
     system = _system(PROBLEMS["2q-generic"], coupling="z")

@@ -314,22 +314,22 @@ def level_propagator(system: System, s: float) -> LevelPropagator:
             scalar_rate=(-1j * (e[:, None] - e[None, :])).ravel(),
             blocks=(),
         )
-    if getattr(gen, "_generic", False):
-        # non-degenerate levels, distinct Bohr frequencies: davies.py holds the Pauli rate
-        # matrix (populations) and one eigenvalue per coherence; no sparse assembly needed
-        pop = np.array(gen._rates, dtype=float)  # real: the Pauli rate matrix
-        pop[np.diag_indices(d)] += np.diagonal(gen._coef).real
+    structure = gen.pauli_structure()
+    if structure is not None:
+        # non-degenerate levels, distinct Bohr frequencies: the Pauli rate matrix
+        # (populations) and one eigenvalue per coherence; no sparse assembly needed
+        pop, coh = structure
         scalar_index = np.flatnonzero(~np.eye(d, dtype=bool).ravel())
         return LevelPropagator(
             level=float(s),
             eig=eig,
             target=target,
             scalar_index=scalar_index.astype(np.int64),
-            scalar_rate=np.array(gen._coef.ravel()[scalar_index], dtype=complex),
+            scalar_rate=coh.ravel()[scalar_index],
             blocks=((np.arange(d, dtype=np.int64) * (d + 1), pop, 0j),),
         )
     # the generator in the eigenbasis, row-major vec: element (a, c) at a d + c
-    full = sparse.csr_matrix(gen._sparse_eigen_rowmajor())
+    full = sparse.csr_matrix(gen.sparse_eigen())
     full.eliminate_zeros()
     pattern = sparse.csr_matrix((np.ones(full.nnz), full.indices, full.indptr), shape=full.shape)
     _, comp = csgraph.connected_components(pattern, directed=False)
