@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from threadpoolctl import threadpool_limits
 
 from .bath import Bath, make_bath
 from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eigen_decomposition
@@ -63,6 +64,8 @@ __all__ = [
 #: (the spectrum of L(s) costs more for larger systems).
 PREFLIGHT_POINTS = {8: 33, 32: 17}
 PREFLIGHT_POINTS_LARGE = 9
+#: Systems up to this dimension are simulated with one BLAS thread (see ``simulate``).
+BLAS_SINGLE_THREAD_DIM = 64
 #: Largest sparse generator (stored entries) the pre-flight scan assembles at one s.
 PREFLIGHT_MAX_ENTRIES = 20_000_000
 
@@ -660,8 +663,13 @@ def simulate(
             )
         integrator = HELD_INTEGRATOR
     name, fn = get_integrator(integrator, system)
+    # Small matrices: one BLAS thread.  Measured (benchmarks/RESULTS.md): a second
+    # OpenBLAS thread makes 3-5 qubit points 1.4-2.5 times slower, even on an idle
+    # 2-core machine (thread hand-off costs more than the products it splits).
+    blas_threads = 1 if system.dim <= BLAS_SINGLE_THREAD_DIM else None
     try:
-        outcome = fn(system, schedule, float(tf_ns), rtol=float(rtol), atol=float(atol))
+        with threadpool_limits(limits=blas_threads, user_api="blas"):
+            outcome = fn(system, schedule, float(tf_ns), rtol=float(rtol), atol=float(atol))
     except (np.linalg.LinAlgError, FloatingPointError, ArithmeticError, RuntimeError) as exc:
         outcome = IntegrationOutcome.failure(system.dim, f"{type(exc).__name__}: {exc}")
     warnings = warnings + tuple(outcome.stats.pop("warnings", ()))

@@ -40,6 +40,20 @@ anneals) or by the general integrator, or returned with a warning when neither i
 affordable.  Levels that are degenerate at a point (s = 0 of a multi-qubit
 driver) are rotated to diagonalise dH/ds, the limit of the eigenbasis.
 
+Once split off, a free mode stays an amplitude even where a shorter step resolves
+its coherence again (folding it back would make the steps follow its oscillation).
+Clusters of nearly resonant modes are the connected components of the coupling
+graph above a threshold that is raised until no cluster exceeds ``CLUSTER_MAX_SIZE``
+modes; the coupling left between clusters counts in the error estimate.  Above
+``DRESSING_MAX_DIM`` levels the free modes run bare and their whole amplitude counts.
+
+The collocation equations of a step are linear.  They are solved block by block
+(populations, each coherence) for a given frame-rotation coupling, and that
+fixed-point (block-Jacobi) iteration is replaced by GMRES (Saad & Schultz, 1986)
+preconditioned with the same block solves when it contracts too slowly, as it does
+when the coupling is comparable to the spacing of the levels it connects (dense
+multi-qubit spectra).
+
 Local errors are estimated from the spectral tail (the highest Legendre
 coefficient) of the collocation polynomials and steps are adapted to
 ``rtol * |delta| + atol``; step boundaries fall on the schedule's knots.
