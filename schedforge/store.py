@@ -336,6 +336,16 @@ class PointStore:
             f"INSERT INTO points ({cols}) VALUES ({marks})", (key, *values, int(run_id))
         )
 
+    def forget(self, keys: Iterable[str]) -> int:
+        """Remove the points of ``keys`` (one transaction); return how many were removed.
+
+        Used to compute points again that did not succeed (``--retry-failed``).
+        """
+        wanted = [(k,) for k in keys]
+        with self._conn:
+            cur = self._conn.executemany("DELETE FROM points WHERE key = ?", wanted)
+        return int(cur.rowcount)
+
     def rows(self, keys: Iterable[str] | None = None) -> list[dict[str, Any]]:
         """Stored rows (all, or those of ``keys``), sorted by family, variant, k_start,
         k_end, tf_ns; NULL floats come back as NaN."""

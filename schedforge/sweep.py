@@ -341,6 +341,7 @@ def run_sweep(
     progress: str = "auto",
     fresh: bool = False,
     *,
+    retry_failed: bool = False,
     progress_stream: Any = None,
     after_point: Callable[[SweepPoint, dict[str, Any]], None] | None = None,
 ) -> SweepOutcome:
@@ -361,6 +362,9 @@ def run_sweep(
     fresh : bool
         Archive an existing store of ``out_dir`` (to ``out_dir/archive/<time>/``)
         and start over; otherwise a store of another spec is refused.
+    retry_failed : bool
+        Compute again the stored points whose status is not "ok" (their rows are
+        replaced by the new results); by default they are kept and not recomputed.
     progress_stream : text stream, optional
         Where progress goes.
     after_point : callable, optional
@@ -392,6 +396,8 @@ def run_sweep(
     spec_json = json.dumps(dataclasses.asdict(spec), sort_keys=True, default=_json_default)
     lost: list[tuple[SweepPoint, str]] = []
     with PointStore(folder / STORE_NAME, physics_hash, physics=spec.physics_dict()) as store:
+        if retry_failed:
+            store.forget(r["key"] for r in store.rows(keys.values()) if r["status"] != "ok")
         done_keys = store.keys()
         # Longest first (cost grows with tf): fewer idle workers at the end.
         pending = sorted((p for p in points if keys[p] not in done_keys), key=lambda p: -p.tf_ns)

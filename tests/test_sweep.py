@@ -403,6 +403,29 @@ def test_failed_points_stored_listed_and_not_recomputed(tmp_path, write_spec, ru
     )
     assert code == 0 and len(calls) == n_calls  # stored failures are not recomputed
 
+    # --retry-failed computes exactly the points that did not succeed, and replaces them
+    def healed(spec, **kw):
+        calls.append((kw["tf_ns"], kw["k_end"]))
+        return real(spec, **kw)
+
+    monkeypatch.setattr(dynamics, "simulate_spec", healed)
+    code, _, err = run_cli(
+        "sweep",
+        spec_path,
+        "--out",
+        out,
+        "--executor",
+        "serial",
+        "--quiet",
+        "--points-only",
+        "--retry-failed",
+    )
+    assert code == 0, err
+    assert sorted(calls[n_calls:]) == [(5.0, 1.0), (5.0, 2.0)]
+    rows = {(r["k_end"], r["tf_ns"]): r for r in read_points_csv(out / "points.csv")}
+    assert len(rows) == 4 and all(r["status"] == "ok" for r in rows.values())
+    assert rows[(2.0, 5.0)]["trace_distance"] > 0
+
 
 def test_analysis_hook_called_once_after_complete_sweep(tmp_path, write_spec, run_cli, monkeypatch):
     import schedforge.cli.sweep as cli_sweep

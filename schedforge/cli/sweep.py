@@ -67,6 +67,12 @@ def register(subparsers: Any) -> None:
         help="archive an existing store in DIR (to DIR/archive/<time>/) and start over",
     )
     p.add_argument(
+        "--retry-failed",
+        action="store_true",
+        help="compute again the stored points that did not succeed (by default they are "
+        "kept and listed, not recomputed)",
+    )
+    p.add_argument(
         "--points-only",
         action="store_true",
         help="compute and store the points and write points.csv, but skip the fits and "
@@ -110,7 +116,14 @@ def run(args: argparse.Namespace) -> int:
     progress = "quiet" if args.quiet else "auto"
     with make_executor(kind, args.workers, args.scheduler, args.dask_local) as ex:
         try:
-            outcome = run_sweep(spec, out, executor=ex, progress=progress, fresh=args.fresh)
+            outcome = run_sweep(
+                spec,
+                out,
+                executor=ex,
+                progress=progress,
+                fresh=args.fresh,
+                retry_failed=args.retry_failed,
+            )
         except KeyboardInterrupt:
             print(
                 f"interrupted: every finished point is stored in {out / 'sweep.sqlite'}; "
@@ -134,7 +147,8 @@ def run(args: argparse.Namespace) -> int:
         where = "listed above" if not args.quiet else f"see the status column of {outcome.csv_path}"
         print(
             f"warning: sweep complete, but {outcome.n_failed} point(s) did not succeed "
-            f"({where}); their numbers are NaN and must not be used",
+            f"({where}); their numbers are NaN and must not be used (--retry-failed "
+            "computes them again)",
             file=sys.stderr,
         )
     hook = None if args.points_only else _analysis_hook()
