@@ -122,6 +122,26 @@ def test_ising_short_anneal_matches_general(problem: ProblemSpec, tf: float) -> 
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
 
 
+def test_krylov_solve_of_the_coupled_step_matches_general(monkeypatch) -> None:
+    # Force every step's collocation system through GMRES (no block-Jacobi sweep is
+    # accepted); the result must still agree with the reference integrator.
+    system = System.from_spec(_spec_with(TWO_QUBITS))
+    f = make_schedule("beta", k_end=2)
+    ref = simulate(system, f, 10.0, integrator="general", rtol=1e-12, atol=1e-16)
+    calls = []
+    real = ef._krylov_solve
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(ef, "SLOW_ITERATION_LIMIT", 1)
+    monkeypatch.setattr(ef, "_krylov_solve", counted)
+    fast = simulate(system, f, 10.0, integrator="eigenframe")
+    assert fast.integrator == "eigenframe" and len(calls) >= fast.stats["steps"]
+    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+
+
 # -- the long-anneal regime -------------------------------------------------------------
 @pytest.mark.parametrize("k_end", [0, 1, 2, 3])
 def test_boundary_cancellation_slope(qubit: System, k_end: int) -> None:
