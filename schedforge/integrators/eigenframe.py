@@ -73,7 +73,7 @@ from typing import Any
 import numpy as np
 from numpy.polynomial import legendre
 from numpy.typing import NDArray
-from scipy.linalg import expm
+from scipy.linalg import expm, lu_factor, lu_solve
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.sparse.linalg import LinearOperator, gmres
@@ -424,19 +424,18 @@ def _slow_step(
     # populations: P_i - h sum_j a_ij tf W_j P_j = p0 + h sum_j a_ij G_j
     Wn = tf * fr.W[1:]
     M = np.eye(m * d) - h * np.einsum("ij,jab->iajb", scheme.A, Wn).reshape(m * d, m * d)
-    lu = np.linalg.inv(M)
+    pop_lu = lu_factor(M, check_finite=False)
     resolved = off & ~levin
-    any_levin = bool(levin.any())
-    any_resolved = bool(resolved.any())
-    if any_levin:
-        lam_t = np.moveaxis(lam, 0, -1)  # (d, d, m+1)
-        lmat = scheme.D[None, None] / h - lam_t[:, :, :, None] * np.eye(m + 1)[None, None]
-        lmat[~levin] = np.eye(m + 1)
+    # each coherence block is solved on its own: factor only the blocks in use
+    li, lj = np.nonzero(levin)
+    ri, rj = np.nonzero(resolved)
+    if li.size:
+        lam_l = lam[:, li, lj].T  # (n_levin, m+1)
+        lmat = scheme.D[None] / h - lam_l[:, :, None] * np.eye(m + 1)[None]
         linv = np.linalg.inv(lmat)
-    if any_resolved:
-        lam_c = np.moveaxis(lam[1:], 0, -1)  # (d, d, m)
-        rmat = np.eye(m)[None, None] - h * scheme.A[None, None] * lam_c[:, :, None, :]
-        rmat[~resolved] = np.eye(m)
+    if ri.size:
+        lam_r = lam[1:, ri, rj].T  # (n_resolved, m)
+        rmat = np.eye(m)[None] - h * scheme.A[None] * lam_r[:, None, :]
         rinv = np.linalg.inv(rmat)
     sigma_comm = fr.K * (fr.pi[:, None, :] - fr.pi[:, :, None])  # [K, diag(pi)]
     eye = np.eye(d)
@@ -456,24 +455,21 @@ def _slow_step(
         Gp = np.einsum("naa->na", G)
         if forced:
             Gp = Gp - fp[:, None] * fr.dpi
-        rhs = h * scheme.A @ Gp[1:]
+        rhs = (h * scheme.A @ Gp[1:]).reshape(m * d)
         if forced:
-            rhs = rhs + p0[None, :]
+            rhs = rhs + np.tile(p0, m)
+        sol = lu_solve(pop_lu, np.column_stack([rhs.real, rhs.imag]), check_finite=False)
         P_new = np.empty_like(P)
         P_new[0] = p0 if forced else 0.0
-        P_new[1:] = (lu @ rhs.reshape(m * d, -1)).reshape(m, d)
-        Gc = np.moveaxis(G, 0, -1)  # (d, d, m+1)
+        P_new[1:] = (sol[:, 0] + 1j * sol[:, 1]).reshape(m, d)
         C_new = np.zeros_like(C)
-        if any_levin:
-            Q = np.moveaxis((linv @ Gc[..., None])[..., 0], -1, 0)
-            C_new = np.where(levin[None], Q, C_new)
-        if any_resolved:
-            start = c0 if forced else np.zeros_like(c0)
-            rhs_c = start[:, :, None] + h * np.einsum("ij,abj->abi", scheme.A, Gc[:, :, 1:])
-            R = np.empty_like(C)
-            R[0] = start
-            R[1:] = np.moveaxis((rinv @ rhs_c[..., None])[..., 0], -1, 0)
-            C_new = np.where(resolved[None], R, C_new)
+        if li.size:
+            C_new[:, li, lj] = (linv @ G[:, li, lj].T[..., None])[..., 0].T
+        if ri.size:
+            start = c0[ri, rj] if forced else np.zeros(ri.size, dtype=complex)
+            rhs_c = start[:, None] + h * G[1:, ri, rj].T @ scheme.A.T  # (n_resolved, m)
+            C_new[0, ri, rj] = start
+            C_new[1:, ri, rj] = (rinv @ rhs_c[..., None])[..., 0].T
         return P_new, C_new
 
     def size(P: NDArray[Any], C: NDArray[Any]) -> float:
