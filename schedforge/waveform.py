@@ -345,6 +345,10 @@ class RealizedSchedule(Schedule):
         integrators step onto ``knots``, where s jumps.
     continuity : int or None
         The waveform is C^continuity in t (-1 for jumps; ``None``: smooth).
+    n_edges : int
+        Edges of the played waveform (sample or level changes, polyline vertices);
+        0 when the design is played as it is.  Integrators that follow each edge
+        scale their step budget with it.
     """
 
     variant = "realized"
@@ -366,6 +370,7 @@ class RealizedSchedule(Schedule):
         self._pieces = pieces
         self._filter = filt
         self.model = dict(model)
+        self.n_edges = 0 if pieces is None else int(np.count_nonzero(pieces.a))
         if pieces is None:
             self.knots = tuple(design.knots)
             self.jumps = False

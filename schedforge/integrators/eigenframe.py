@@ -113,6 +113,11 @@ CLUSTER_WORK_LIMIT = 2.0e6
 LEVIN_COMFORT = 30.0
 #: |tf lambda h| above which a coherence uses the exponential (Levin) update.
 LEVIN_THRESHOLD = 3.0
+#: Step budget (accepted plus rejected) of one run.
+MAX_STEPS = 100_000
+#: Extra steps allowed per edge of a played waveform (``n_edges`` of a realized
+#: schedule): a filtered hold took up to about 40 steps per level change at 1e5 ns.
+STEPS_PER_EDGE = 60
 #: Block-Jacobi sweeps of the slow collocation system before switching to GMRES.
 SLOW_ITERATION_LIMIT = 40
 #: A sweep that shrinks the change by less than this factor hands over to GMRES.
@@ -868,7 +873,7 @@ def integrate_eigenframe(
     rtol: float = 1e-10,
     atol: float = 1e-14,
     stages: int = DEFAULT_STAGES,
-    max_steps: int = 100000,
+    max_steps: int = MAX_STEPS,
     h_max: float = 0.25,
     mode: str = "auto",
     degeneracy_tol: float = 0.0,
@@ -1232,8 +1237,17 @@ def eigenframe_integrator(
         p_start = np.zeros(system.dim)
         p_start[0] = 1.0
     tol = system.degeneracy_tol
+    # a played waveform with many edges (a filtered hold) needs a few steps per edge
+    max_steps = max(MAX_STEPS, STEPS_PER_EDGE * int(getattr(schedule, "n_edges", 0)))
     out = integrate_eigenframe(
-        model, schedule, tf_ns, p_start, rtol=rtol, atol=atol, degeneracy_tol=tol
+        model,
+        schedule,
+        tf_ns,
+        p_start,
+        rtol=rtol,
+        atol=atol,
+        degeneracy_tol=tol,
+        max_steps=max_steps,
     )
     phase = tf_ns * max(
         np.ptp(np.linalg.eigvalsh(ham.matrix(0.0))), np.ptp(np.linalg.eigvalsh(ham.matrix(1.0)))
@@ -1254,6 +1268,7 @@ def eigenframe_integrator(
             rtol=rtol,
             atol=atol,
             degeneracy_tol=tol,
+            max_steps=max_steps,
             dress=False,
         )
         if bare["status"] == "ok":
@@ -1274,6 +1289,7 @@ def eigenframe_integrator(
             atol=atol,
             mode="resolved",
             degeneracy_tol=tol,
+            max_steps=max_steps,
         )
     stats = dict(out["stats"])
     stats["integrator"] = "eigenframe"
