@@ -122,6 +122,25 @@ def test_ising_short_anneal_matches_general(problem: ProblemSpec, tf: float) -> 
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
 
 
+def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
+    # against the definition, by brute force: the longest candidate step h' <= limit with
+    # no coherence in 1 < |lambda| h' < LEVIN_COMFORT (else the current h)
+    def brute(lam_abs, h, limit):
+        lo, hi = 1.0 / lam_abs, ef.LEVIN_COMFORT / lam_abs
+        cands = np.concatenate([lo, hi * 1.01, [limit]])
+        cands = np.sort(cands[(cands > h) & (cands <= limit)])[::-1]
+        for c in cands:
+            if not np.any((lo < c) & (c < hi)):
+                return float(c)
+        return h
+
+    rng = np.random.default_rng(7)
+    for _ in range(500):
+        lam = 10 ** rng.uniform(0, 6, rng.integers(1, 40))
+        h, limit = 10 ** rng.uniform(-7, -1.5), 10 ** rng.uniform(-4, -1)
+        assert ef._clean_jump(lam, h, limit) == brute(lam, h, limit)
+
+
 def test_krylov_solve_of_the_coupled_step_matches_general(monkeypatch) -> None:
     # Force every step's collocation system through GMRES (no block-Jacobi sweep is
     # accepted); the result must still agree with the reference integrator.

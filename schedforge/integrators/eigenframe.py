@@ -857,11 +857,17 @@ def _clean_jump(lam_abs: NDArray[np.float64], h: float, h_limit: float = 0.05) -
     lo = 1.0 / lam_abs
     hi = LEVIN_COMFORT / lam_abs
     candidates = np.concatenate([lo, hi * 1.01, [h_limit]])
-    candidates = np.sort(candidates[(candidates > h) & (candidates <= h_limit)])[::-1]
-    for cand in candidates:
-        if not np.any((lo < cand) & (cand < hi)):
-            return float(cand)
-    return h
+    candidates = candidates[(candidates > h) & (candidates <= h_limit)]
+    if candidates.size == 0:
+        return h
+    # a candidate is half-way for some coherence iff lo_i < c < hi_i for some i: among
+    # the intervals with lo_i < c, the largest hi_i exceeds c
+    order = np.argsort(lo)
+    reach = np.maximum.accumulate(hi[order])
+    below = np.searchsorted(lo[order], candidates, side="left")
+    inside = (below > 0) & (reach[np.maximum(below - 1, 0)] > candidates)
+    clean = candidates[~inside]
+    return float(clean.max()) if clean.size else h
 
 
 def integrate_eigenframe(
