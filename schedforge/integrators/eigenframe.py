@@ -113,6 +113,9 @@ CLUSTER_WORK_LIMIT = 2.0e6
 LEVIN_COMFORT = 30.0
 #: |tf lambda h| above which a coherence uses the exponential (Levin) update.
 LEVIN_THRESHOLD = 3.0
+#: Population blocks (stages x levels) up to this size are inverted explicitly, larger
+#: ones LU-factored.
+SMALL_POPULATION_BLOCK = 128
 #: Step budget (accepted plus rejected) of one run.
 MAX_STEPS = 100_000
 #: Extra steps allowed per edge of a played waveform (``n_edges`` of a realized
@@ -429,7 +432,17 @@ def _slow_step(
     # populations: P_i - h sum_j a_ij tf W_j P_j = p0 + h sum_j a_ij G_j
     Wn = tf * fr.W[1:]
     M = np.eye(m * d) - h * np.einsum("ij,jab->iajb", scheme.A, Wn).reshape(m * d, m * d)
-    pop_lu = lu_factor(M, check_finite=False)
+    if m * d <= SMALL_POPULATION_BLOCK:  # tiny: an explicit inverse has less overhead
+        pop_inv = np.linalg.inv(M)
+
+        def pop_solve(b: NDArray[np.float64]) -> NDArray[np.float64]:
+            return pop_inv @ b
+    else:
+        pop_lu = lu_factor(M, check_finite=False)
+
+        def pop_solve(b: NDArray[np.float64]) -> NDArray[np.float64]:
+            return lu_solve(pop_lu, b, check_finite=False)
+
     resolved = off & ~levin
     # each coherence block is solved on its own: factor only the blocks in use
     li, lj = np.nonzero(levin)
@@ -463,7 +476,7 @@ def _slow_step(
         rhs = (h * scheme.A @ Gp[1:]).reshape(m * d)
         if forced:
             rhs = rhs + np.tile(p0, m)
-        sol = lu_solve(pop_lu, np.column_stack([rhs.real, rhs.imag]), check_finite=False)
+        sol = pop_solve(np.column_stack([rhs.real, rhs.imag]))
         P_new = np.empty_like(P)
         P_new[0] = p0 if forced else 0.0
         P_new[1:] = (sol[:, 0] + 1j * sol[:, 1]).reshape(m, d)
