@@ -61,24 +61,31 @@ coefficient) of the collocation polynomials and steps are adapted to
 Where the assumptions fail (degenerate levels, coinciding Bohr frequencies,
 a Lamb shift, a closed system), the integrator hands over to the general one
 and says so in the outcome's ``stats["fallback"]``.
+
+The collocation nodes and matrices live in :mod:`.collocation`, the treatment of
+the free modes (ratios, clusters, rates, dressing) in :mod:`.free_modes`; this
+module holds the eigenframe model, the step and the driver.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import Any
 
 import numpy as np
-from numpy.polynomial import legendre
 from numpy.typing import NDArray
-from scipy.linalg import expm, lu_factor, lu_solve
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
+from scipy.linalg import lu_factor, lu_solve
 from scipy.sparse.linalg import LinearOperator, gmres
 
 from ..units import GHZ_TO_RAD_PER_NS
+from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme
+from .free_modes import (
+    propagate_clusters,
+    resonant_clusters,
+    transient_dressing,
+    transient_rates,
+)
 
 __all__ = [
     "EigenframeModel",
@@ -88,26 +95,9 @@ __all__ = [
     "integrate_eigenframe",
 ]
 
-#: Collocation stages per step (Radau IIA of order 2m - 1).
-DEFAULT_STAGES = 8
-#: Largest perturbation ratio |S| / |tf (lambda_ab - lambda_m)| for which free modes
-#: are dressed; coherences coupled more strongly to a partner of similar frequency
-#: are resolved instead.
-RESONANCE_RATIO = 1.0e-4
-#: Largest threshold tried when clusters at ``RESONANCE_RATIO`` are too large.
-RESONANCE_RATIO_MAX = 1.0e-1
-#: Largest cluster of free modes propagated jointly.
-CLUSTER_MAX_SIZE = 24
-#: Clusters up to this size are exponentiated by scaling and squaring, larger ones
-#: through their eigen-decomposition (faster there).
-EXPM_EIG_SIZE = 24
 #: Free-mode dressing costs O(d^3) per node; above this dimension it is skipped and
 #: the free-mode amplitude counts wholly in the error estimate.
 DRESSING_MAX_DIM = 32
-#: Largest work (substeps x cluster size^3) spent on one cluster of nearly resonant
-#: free modes in one step; beyond it the cluster is left undressed and its amplitude
-#: counts wholly in the error estimate.
-CLUSTER_WORK_LIMIT = 2.0e6
 #: |tf lambda h| that a jump to longer steps gives every exponentially updated coherence
 #: (the Levin collocation amplifies rough forcing by about (m^2 / |tf lambda h|)^m).
 LEVIN_COMFORT = 30.0
@@ -128,80 +118,6 @@ SLOW_CONTRACTION = 0.5
 #: GMRES restart length and number of restarts for the slow collocation system.
 KRYLOV_RESTART = 40
 KRYLOV_MAXITER = 5
-
-
-# --------------------------------------------------------------------------
-# collocation machinery
-# --------------------------------------------------------------------------
-@dataclass(frozen=True)
-class CollocationScheme:
-    """Nodes and matrices of one step, on the unit interval.
-
-    Attributes
-    ----------
-    c : ndarray
-        The m Radau IIA nodes in (0, 1], last one 1.
-    tau : ndarray
-        ``[0, c_1, ..., c_m]``, the m + 1 nodes of the Levin collocation.
-    A : ndarray
-        Radau IIA matrix, ``A[i, j] = int_0^{c_i} l_j``.
-    D : ndarray
-        Differentiation matrix on ``tau`` (polynomials of degree m).
-    w : ndarray
-        Quadrature weights on ``tau`` for the integral over [0, 1].
-    Acum : ndarray
-        ``Acum[i, j] = int_0^{tau_i} L_j`` with L_j the Lagrange basis on ``tau``.
-    tail : ndarray
-        Row vector giving the highest Legendre coefficient of the interpolant
-        on ``tau`` (the error indicator).
-    """
-
-    c: NDArray[np.float64]
-    tau: NDArray[np.float64]
-    A: NDArray[np.float64]
-    D: NDArray[np.float64]
-    w: NDArray[np.float64]
-    Acum: NDArray[np.float64]
-    tail: NDArray[np.float64]
-
-
-def _lagrange_integrals(nodes: NDArray[np.float64], upper: NDArray[np.float64]) -> NDArray:
-    """``out[i, j] = int_0^{upper_i} l_j(t) dt`` for the Lagrange basis on ``nodes``."""
-    n = nodes.size
-    out = np.zeros((upper.size, n))
-    for j in range(n):
-        others = np.delete(nodes, j)
-        poly = np.poly1d(np.poly(others)) / np.prod(nodes[j] - others)
-        prim = np.polyint(poly)
-        out[:, j] = prim(upper) - prim(0.0)
-    return out
-
-
-@lru_cache(maxsize=8)
-def collocation_scheme(m: int = DEFAULT_STAGES) -> CollocationScheme:
-    """Build the collocation scheme with ``m`` Radau IIA stages."""
-    # Radau IIA nodes: zeros of P_m(2c - 1) - P_(m-1)(2c - 1)
-    coef = np.zeros(m + 1)
-    coef[m] = 1.0
-    coef[m - 1] = -1.0
-    roots = np.sort(np.real(legendre.legroots(coef)))
-    c = (roots + 1.0) / 2.0
-    c[-1] = 1.0
-    tau = np.concatenate([[0.0], c])
-    A = _lagrange_integrals(c, c)
-    Acum = _lagrange_integrals(tau, tau)
-    w = _lagrange_integrals(tau, np.array([1.0]))[0]
-    # differentiation matrix on tau
-    n = tau.size
-    D = np.zeros((n, n))
-    for j in range(n):
-        others = np.delete(tau, j)
-        poly = np.poly1d(np.poly(others)) / np.prod(tau[j] - others)
-        D[:, j] = np.polyder(poly)(tau)
-    # highest Legendre coefficient of the interpolant through tau
-    V = legendre.legvander(2.0 * tau - 1.0, n - 1)
-    tail = np.linalg.inv(V)[-1]
-    return CollocationScheme(c=c, tau=tau, A=A, D=D, w=w, Acum=Acum, tail=tail)
 
 
 # --------------------------------------------------------------------------
@@ -573,276 +489,6 @@ def _krylov_solve(
 
 
 # --------------------------------------------------------------------------
-# free oscillations (transients), dressed to first order in 1 / tf
-# --------------------------------------------------------------------------
-def _intra_cluster(labels: NDArray[np.int64] | None, d: int) -> tuple[NDArray, NDArray]:
-    """Masks of (mode, partner) pairs in the same near-resonant cluster.
-
-    Returned in the layouts of ``_coupling_ratios``: [a, c, b] for partner cb and
-    [a, b, c] for partner ac.
-    """
-    if labels is None:
-        z = np.zeros((d, d, d), dtype=bool)
-        return z, z
-    lab = np.where(labels >= 0, labels, -1)
-    intra1 = (lab[:, None, :] == lab[None, :, :]) & (lab[:, None, :] >= 0)
-    intra2 = (lab[:, :, None] == lab[:, None, :]) & (lab[:, :, None] >= 0)
-    return intra1, intra2
-
-
-def _coupling_ratios(
-    K: NDArray[np.float64],
-    fp: NDArray[np.float64],
-    lam: NDArray[np.complex128],
-    labels: NDArray[np.int64] | None = None,
-) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray, NDArray]:
-    """Perturbation ratios |S_(m,ab)| / |lam_m - lam_ab| between coupled coherences.
-
-    The frame rotation S = -f'[K, .] couples coherence ab to cb (through K_ca)
-    and to ac (through K_bc), c not in {a, b}.  Arrays are stacked over n nodes;
-    returns ``mask1, den1, ratio1`` indexed [n, a, c, b] (partner cb) and
-    ``mask2, den2, ratio2`` indexed [n, a, b, c] (partner ac).
-    """
-    d = K.shape[-1]
-    idx = np.arange(d)
-    mask1 = np.ones((d, d, d), dtype=bool)  # [a, c, b]: c not in {a, b}
-    mask1[idx, idx, :] = False
-    mask1[:, idx, idx] = False
-    mask2 = mask1.transpose(0, 2, 1)  # [a, b, c]
-    intra1, intra2 = _intra_cluster(labels, d)
-    mask1 = mask1 & ~intra1
-    mask2 = mask2 & ~intra2
-    afp = np.abs(fp)[:, None, None, None]
-    den1 = lam[:, None, :, :] - lam[:, :, None, :]  # [n, a, c, b] = lam_cb - lam_ab
-    den2 = lam[:, :, None, :] - lam[:, :, :, None]  # [n, a, b, c] = lam_ac - lam_ab
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio1 = np.where(mask1, afp * np.abs(K)[:, :, :, None] / np.abs(den1), 0.0)
-        ratio2 = np.where(mask2, afp * np.abs(K)[:, None, :, :] / np.abs(den2), 0.0)
-    ratio1 = np.nan_to_num(ratio1, nan=np.inf)
-    ratio2 = np.nan_to_num(ratio2, nan=np.inf)
-    return mask1, den1, ratio1, mask2, den2, ratio2
-
-
-def _resonant_clusters(
-    K: NDArray[np.float64],
-    fp: NDArray[np.float64],
-    lam: NDArray[np.complex128],
-    candidates: NDArray[np.bool_],
-) -> NDArray[np.int64]:
-    """Group free modes coupled with a ratio above a threshold into clusters.
-
-    Returns a (d, d) array of cluster labels, -1 for modes outside any cluster of
-    two or more.  Within a cluster the modes are nearly degenerate and are
-    propagated together (quasi-degenerate perturbation theory); between clusters
-    the coupling is eliminated to second order.  The threshold starts at
-    ``RESONANCE_RATIO`` and is raised tenfold (up to ``RESONANCE_RATIO_MAX``) while
-    the largest cluster has more than ``CLUSTER_MAX_SIZE`` members: a dense spectrum
-    (several qubits) would otherwise join most modes into one cluster too large to
-    propagate.  The coupling left between clusters counts in the error estimate.
-    """
-    d = K.shape[-1]
-    _, _, ratio1, _, _, ratio2 = _coupling_ratios(K, fp, lam)
-    r1 = ratio1.max(axis=0)  # [a, c, b]: ab -- cb
-    r2 = ratio2.max(axis=0)  # [a, b, c]: ab -- ac
-    a1, c1, b1 = np.nonzero((r1 > RESONANCE_RATIO) & candidates[:, None, :] & candidates[None])
-    a2, b2, c2 = np.nonzero(
-        (r2 > RESONANCE_RATIO) & candidates[:, :, None] & candidates[:, None, :]
-    )
-    src = np.concatenate([a1 * d + b1, a2 * d + b2])
-    dst = np.concatenate([c1 * d + b1, a2 * d + c2])
-    weight = np.concatenate([r1[a1, c1, b1], r2[a2, b2, c2]])
-    labels = -np.ones((d, d), dtype=np.int64)
-    threshold = RESONANCE_RATIO
-    while src.size:
-        keep = weight > threshold
-        graph = coo_matrix((np.ones(int(keep.sum())), (src[keep], dst[keep])), shape=(d * d, d * d))
-        _, comp = connected_components(graph, directed=False)
-        comp = comp.reshape(d, d)
-        sizes = np.bincount(comp[candidates], minlength=comp.max() + 1)
-        if sizes.max() <= CLUSTER_MAX_SIZE or threshold >= RESONANCE_RATIO_MAX:
-            member = candidates & (sizes[comp] > 1) & (sizes[comp] <= CLUSTER_MAX_SIZE)
-            labels[member] = comp[member]
-            break
-        threshold *= 10.0
-    return labels
-
-
-def _expm_stack(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
-    """Matrix exponentials of a stack of small matrices.
-
-    ``scipy.linalg.expm`` (scaling and squaring, batched) for matrices up to
-    ``EXPM_EIG_SIZE``; above, the eigen-decomposition (vectorised in LAPACK) where it
-    is well conditioned and ``expm`` for the few matrices where it is not.
-    """
-    if omega.shape[-1] <= EXPM_EIG_SIZE:
-        return expm(omega)
-    w, vec = np.linalg.eig(omega)
-    cond = np.linalg.cond(vec)
-    out = vec @ (np.exp(w)[..., None] * np.linalg.inv(vec))
-    bad = ~np.isfinite(cond) | (cond > 1e6)
-    if np.any(bad):
-        out[bad] = expm(omega[bad])
-    return out
-
-
-def _propagate_clusters(
-    A: NDArray[np.complex128],
-    labels: NDArray[np.int64],
-    rate: NDArray[np.complex128],
-    K: NDArray[np.float64],
-    fp: NDArray[np.float64],
-    scheme: CollocationScheme,
-    h: float,
-) -> tuple[NDArray[np.complex128], NDArray[np.bool_]]:
-    """Propagate the free modes of each near-resonant cluster jointly over one step.
-
-    Within a cluster, dA/dx = M(x) A with M = diag(rate) plus the direct frame-
-    rotation couplings S between members; the common mean of the diagonal is
-    integrated exactly and the remainder by a fourth-order Magnus method on the
-    Lagrange interpolant of the node values, with substeps keeping |R dx| <= 0.5.
-    Clusters that would cost more than ``CLUSTER_WORK_LIMIT`` are left as they are
-    and returned in the ``skipped`` mask (the caller counts their amplitude as error).
-    """
-    d = A.shape[0]
-    out = A.copy()
-    skipped = np.zeros((d, d), dtype=bool)
-    m1 = scheme.tau.size
-    # Lagrange basis on tau for interpolation inside the step
-    vand = np.vander(scheme.tau, m1, increasing=True)
-    coef_of_values = np.linalg.inv(vand)  # values at tau -> polynomial coefficients
-    pending: list[tuple[NDArray, NDArray, NDArray, complex]] = []
-    for lab in np.unique(labels[labels >= 0]):
-        ma, mb = np.nonzero(labels == lab)
-        n = ma.size
-        # direct frame-rotation couplings [j, i]: mode i = (a, b) feeds j = (c, b)
-        # with S = -f' K_ca and j = (a, c) with S = +f' K_bc
-        same_a = ma[:, None] == ma[None, :]
-        same_b = mb[:, None] == mb[None, :]
-        f = fp[:, None, None]
-        M = np.where(same_b & ~same_a, -f * K[:, ma[:, None], ma[None, :]], 0.0)
-        M = M + np.where(same_a & ~same_b, f * K[:, mb[None, :], mb[:, None]], 0.0)
-        M = M.astype(complex)
-        M[:, np.arange(n), np.arange(n)] = rate[:, ma, mb]
-        mean = np.trace(M, axis1=1, axis2=2) / n
-        R = M - mean[:, None, None] * np.eye(n)[None]
-        coeffs = np.tensordot(coef_of_values, R, axes=(1, 0))  # polynomial in tau
-        norm = float(np.max(np.sum(np.abs(R), axis=-1)))  # infinity norm at the nodes
-        n_sub = max(1, int(np.ceil(h * norm / 0.5)))
-        if n_sub * n**3 > CLUSTER_WORK_LIMIT:
-            skipped |= labels == lab  # too costly: left undressed, counted as error
-            continue
-        dt = 1.0 / n_sub
-        # fourth-order Magnus step on each substep (Blanes, Casas & Ros, 2000):
-        # Omega = dt/2 (R1 + R2) + sqrt(3) dt^2 / 12 [R2, R1] at the Gauss points
-        mid = (np.arange(n_sub) + 0.5) * dt
-        g = dt / (2.0 * math.sqrt(3.0))
-        powers1 = (mid - g)[:, None] ** np.arange(m1)[None, :]
-        powers2 = (mid + g)[:, None] ** np.arange(m1)[None, :]
-        R1 = h * np.tensordot(powers1, coeffs, axes=(1, 0))
-        R2 = h * np.tensordot(powers2, coeffs, axes=(1, 0))
-        omega = 0.5 * dt * (R1 + R2) + (math.sqrt(3.0) * dt**2 / 12.0) * (R2 @ R1 - R1 @ R2)
-        pending.append((ma, mb, omega, np.exp(h * np.dot(scheme.w, mean))))
-    # exponentiate the substeps of all clusters of one size together
-    sizes = sorted({item[0].size for item in pending})
-    for n in sizes:
-        group = [item for item in pending if item[0].size == n]
-        props = _expm_stack(np.concatenate([item[2] for item in group]))
-        start = 0
-        for ma, mb, omega, decay in group:
-            vec = A[ma, mb].astype(complex)
-            for prop in props[start : start + omega.shape[0]]:
-                vec = prop @ vec
-            start += omega.shape[0]
-            out[ma, mb] = vec * decay
-    return out, skipped
-
-
-def _transient_rates(
-    K: NDArray[np.float64],
-    fp: NDArray[np.float64],
-    lam: NDArray[np.complex128],
-    W: NDArray[np.float64],
-    levin: NDArray[np.bool_],
-    labels: NDArray[np.int64] | None = None,
-) -> tuple[NDArray[np.complex128], NDArray[np.float64]]:
-    """Second-order correction mu_ab to the growth rate of free mode ab.
-
-    A free coherence c_ab ~ exp(int lam_ab) couples through the frame rotation
-    S = -f'[K, .] to other coherences and to the populations; eliminating those
-    (they are far off resonance) gives ``A_ab' = (lam_ab + mu_ab) A_ab`` with
-    ``mu_ab = sum_m S_(ab,m) S_(m,ab) / (lam_ab - lam_m)``, the standard second-order
-    adiabatic-elimination (Schrieffer-Wolff) shift.  Arrays are stacked over n
-    nodes: ``K, lam, W`` of shape (n, d, d), ``fp`` of shape (n,); ``lam`` and
-    ``W`` are scaled by tf (per unit x).  Also returns the largest perturbation
-    ratio |S| / |lam_ab - lam_m| of each free mode, a (d, d) array (the expansion
-    parameter; zero outside ``levin``).
-    """
-    d = K.shape[-1]
-    off = ~np.eye(d, dtype=bool)
-    lam_safe = np.where(off, lam, 1.0)
-    K2 = K**2
-    mask1, den1, ratio1, mask2, den2, ratio2 = _coupling_ratios(K, fp, lam, labels)
-    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
-        t1 = np.where(mask1, K2[:, :, :, None] / np.where(mask1, den1, 1.0), 0.0).sum(axis=2)
-        t2 = np.where(mask2, K2[:, None, :, :] / np.where(mask2, den2, 1.0), 0.0).sum(axis=3)
-    # populations: -K_ab^2 (e_a - e_b)^T (lam_ab - W)^(-1) (e_a - e_b), expanded in W / lam
-    wd = np.einsum("naa->na", W)
-    quad = wd[:, :, None] + wd[:, None, :] - W - np.swapaxes(W, 1, 2)
-    q = (2.0 + quad / lam_safe) / lam_safe
-    mu = (fp**2)[:, None, None] * (t1 + t2 - K2 * q)
-    mu[:, ~levin] = 0.0
-    pop_ratio = np.abs(fp)[:, None, None] * np.abs(K) / np.abs(lam_safe)
-    eps = np.maximum(np.maximum(ratio1.max(axis=2), ratio2.max(axis=3)), pop_ratio).max(axis=0)
-    eps[~levin] = 0.0
-    return mu, eps
-
-
-def _transient_dressing(
-    A: NDArray[np.complex128],
-    K: NDArray[np.float64],
-    fp: float,
-    lam: NDArray[np.complex128],
-    W: NDArray[np.float64],
-    labels: NDArray[np.int64] | None = None,
-) -> tuple[NDArray[np.float64], NDArray[np.complex128]]:
-    """Components that free modes with amplitudes ``A`` induce elsewhere.
-
-    Returns the population vector and the coherence matrix of
-    ``sum_ab A_ab v_ab`` with the first-order dressing
-    ``v_m = S_(m,ab) / (lam_ab - lam_m)``.
-    """
-    d = K.shape[0]
-    off = ~np.eye(d, dtype=bool)
-    lam_safe = np.where(off, lam, 1.0)
-    idx = np.arange(d)
-    # T1[c, b] = sum_a A_ab fp K_ca / (lam_cb - lam_ab), c not in {a, b}
-    den1 = lam[None, :, :] - lam[:, None, :]  # [a, c, b]
-    mask1 = np.ones((d, d, d), dtype=bool)
-    mask1[idx, idx, :] = False
-    mask1[:, idx, idx] = False
-    intra1, intra2 = _intra_cluster(labels, d)
-    num1 = A[:, None, :] * K.T[:, :, None]  # [a, c, b]: A_ab K_ca
-    mask1 = mask1 & ~intra1
-    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
-        t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
-    # T2[a, c] = -sum_b A_ab fp K_bc / (lam_ac - lam_ab), c not in {a, b}
-    den2 = lam[:, None, :] - lam[:, :, None]  # [a, b, c]
-    mask2 = mask1.transpose(0, 2, 1) & ~intra2
-    num2 = A[:, :, None] * K[None, :, :]  # [a, b, c]: A_ab K_bc
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)
-    coh = fp * (t1 + t2)
-    coh[~off] = 0.0
-    # populations: (lam_ab - W)^(-1) s_ab with s_ab = fp K_ba (e_a - e_b)
-    u1 = np.where(off, A * fp * K.T / lam_safe, 0.0)
-    u2 = np.where(off, A * fp * K.T / lam_safe**2, 0.0)
-    v1 = u1.sum(axis=1) - u1.sum(axis=0)
-    v2 = u2.sum(axis=1) - u2.sum(axis=0)
-    pop = np.real(v1 + W @ v2)
-    return pop, coh
-
-
-# --------------------------------------------------------------------------
 # the driver
 # --------------------------------------------------------------------------
 def _slowest_relaxation(W: NDArray[np.float64], pi: NDArray[np.float64]) -> float:
@@ -1021,7 +667,7 @@ def integrate_eigenframe(
         candidates = levin | (A != 0)
         free_modes_matter = np.max(np.abs(A), initial=0.0) > 1e-6 * atol or entering.any()
         if dressed and candidates.any() and free_modes_matter:
-            labels = _resonant_clusters(fr.K, fd[1], lam_nodes, candidates)
+            labels = resonant_clusters(fr.K, fd[1], lam_nodes, candidates)
             if not (labels >= 0).any():
                 labels = None
         p0, c0, A0 = p, c.copy(), A.copy()
@@ -1035,7 +681,7 @@ def integrate_eigenframe(
             coh_d = np.zeros((d, d), dtype=complex)
             for _ in range(2):
                 A_try = np.where(entering, c0 - res.C[0] - coh_d, 0.0)
-                pop_d, coh_d = _transient_dressing(
+                pop_d, coh_d = transient_dressing(
                     A_try, fr.K[0], fd[1][0], lam_nodes[0], tf * fr.W[0], labels
                 )
                 res = _slow_step(h, p0 - pop_d, c0, levin, fr, fd[1], tf, scheme, rtol, atol)
@@ -1062,7 +708,7 @@ def integrate_eigenframe(
             amp = float(np.max(np.abs(A_new)))
             if dress and amp > 1e-6 * atol:  # the dressing only while free modes matter
                 if dressed:
-                    mu, eps = _transient_rates(fr.K, fd[1], lam_nodes, tf * fr.W, free, labels)
+                    mu, eps = transient_rates(fr.K, fd[1], lam_nodes, tf * fr.W, free, labels)
                     rate = rate + mu
                     # a dissipative mode cannot grow: a positive real part means the
                     # expansion failed there, which eps (in the error estimate) shows
@@ -1075,7 +721,7 @@ def integrate_eigenframe(
             A_single = np.where(free, A_new * np.exp(growth), 0.0)
             if labels is not None and amp > 1e-6 * atol:
                 in_cluster = labels >= 0
-                A_cl, skipped = _propagate_clusters(
+                A_cl, skipped = propagate_clusters(
                     np.where(free, A_new, 0.0), labels, rate, fr.K, fd[1], scheme, h
                 )
                 A_single = np.where(in_cluster & ~skipped, A_cl, A_single)
@@ -1126,7 +772,7 @@ def integrate_eigenframe(
     if np.any(A != 0) and not dressed:
         dev = dev + A
     elif np.any(A != 0):
-        pop_d, coh_d = _transient_dressing(
+        pop_d, coh_d = transient_dressing(
             A, fr.K[-1], fd[1][-1], tf * fr.lam[-1], tf * fr.W[-1], last_labels
         )
         dev = dev + A + coh_d + np.diag(pop_d)

@@ -1,0 +1,329 @@
+"""Free oscillations of the eigenframe integrator: coupling ratios, clusters, dressing.
+
+A coherence split off at the start of the anneal (or where the integrator changes
+how it treats it) oscillates freely as ``A_ab exp(tf * integral of lambda_ab)``.
+The frame rotation ``S = -f' [K, .]`` couples it to the other coherences and to the
+populations.  This module holds what :mod:`schedforge.integrators.eigenframe` does
+with these modes:
+
+* perturbation ratios ``|S| / |lambda_ab - lambda_m|`` between coupled modes
+  (:func:`coupling_ratios`);
+* clusters of nearly resonant modes, propagated jointly by a fourth-order Magnus
+  method (:func:`resonant_clusters`, :func:`propagate_clusters`; Blanes, Casas & Ros,
+  2000);
+* the second-order shift of their rates (:func:`transient_rates`, adiabatic
+  elimination) and the first-order components they induce elsewhere
+  (:func:`transient_dressing`).
+
+Arrays are in the eigenbasis; rates per unit x = t / tf (scaled by tf).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.linalg import expm
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+
+from .collocation import CollocationScheme
+
+__all__ = [
+    "CLUSTER_MAX_SIZE",
+    "CLUSTER_WORK_LIMIT",
+    "EXPM_EIG_SIZE",
+    "RESONANCE_RATIO",
+    "RESONANCE_RATIO_MAX",
+    "coupling_ratios",
+    "expm_stack",
+    "intra_cluster",
+    "propagate_clusters",
+    "resonant_clusters",
+    "transient_dressing",
+    "transient_rates",
+]
+
+#: Largest perturbation ratio |S| / |tf (lambda_ab - lambda_m)| for which free modes
+#: are dressed; coherences coupled more strongly to a partner of similar frequency
+#: are resolved instead.
+RESONANCE_RATIO = 1.0e-4
+#: Largest threshold tried when clusters at ``RESONANCE_RATIO`` are too large.
+RESONANCE_RATIO_MAX = 1.0e-1
+#: Largest cluster of free modes propagated jointly.
+CLUSTER_MAX_SIZE = 24
+#: Clusters up to this size are exponentiated by scaling and squaring, larger ones
+#: through their eigen-decomposition (faster there).
+EXPM_EIG_SIZE = 24
+#: Largest work (substeps x cluster size^3) spent on one cluster of nearly resonant
+#: free modes in one step; beyond it the cluster is left undressed and its amplitude
+#: counts wholly in the error estimate.
+CLUSTER_WORK_LIMIT = 2.0e6
+
+
+def intra_cluster(labels: NDArray[np.int64] | None, d: int) -> tuple[NDArray, NDArray]:
+    """Masks of (mode, partner) pairs in the same near-resonant cluster.
+
+    Returned in the layouts of ``coupling_ratios``: [a, c, b] for partner cb and
+    [a, b, c] for partner ac.
+    """
+    if labels is None:
+        z = np.zeros((d, d, d), dtype=bool)
+        return z, z
+    lab = np.where(labels >= 0, labels, -1)
+    intra1 = (lab[:, None, :] == lab[None, :, :]) & (lab[:, None, :] >= 0)
+    intra2 = (lab[:, :, None] == lab[:, None, :]) & (lab[:, :, None] >= 0)
+    return intra1, intra2
+
+
+def coupling_ratios(
+    K: NDArray[np.float64],
+    fp: NDArray[np.float64],
+    lam: NDArray[np.complex128],
+    labels: NDArray[np.int64] | None = None,
+) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray, NDArray]:
+    """Perturbation ratios |S_(m,ab)| / |lam_m - lam_ab| between coupled coherences.
+
+    The frame rotation S = -f'[K, .] couples coherence ab to cb (through K_ca)
+    and to ac (through K_bc), c not in {a, b}.  Arrays are stacked over n nodes;
+    returns ``mask1, den1, ratio1`` indexed [n, a, c, b] (partner cb) and
+    ``mask2, den2, ratio2`` indexed [n, a, b, c] (partner ac).
+    """
+    d = K.shape[-1]
+    idx = np.arange(d)
+    mask1 = np.ones((d, d, d), dtype=bool)  # [a, c, b]: c not in {a, b}
+    mask1[idx, idx, :] = False
+    mask1[:, idx, idx] = False
+    mask2 = mask1.transpose(0, 2, 1)  # [a, b, c]
+    intra1, intra2 = intra_cluster(labels, d)
+    mask1 = mask1 & ~intra1
+    mask2 = mask2 & ~intra2
+    afp = np.abs(fp)[:, None, None, None]
+    den1 = lam[:, None, :, :] - lam[:, :, None, :]  # [n, a, c, b] = lam_cb - lam_ab
+    den2 = lam[:, :, None, :] - lam[:, :, :, None]  # [n, a, b, c] = lam_ac - lam_ab
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio1 = np.where(mask1, afp * np.abs(K)[:, :, :, None] / np.abs(den1), 0.0)
+        ratio2 = np.where(mask2, afp * np.abs(K)[:, None, :, :] / np.abs(den2), 0.0)
+    ratio1 = np.nan_to_num(ratio1, nan=np.inf)
+    ratio2 = np.nan_to_num(ratio2, nan=np.inf)
+    return mask1, den1, ratio1, mask2, den2, ratio2
+
+
+def resonant_clusters(
+    K: NDArray[np.float64],
+    fp: NDArray[np.float64],
+    lam: NDArray[np.complex128],
+    candidates: NDArray[np.bool_],
+) -> NDArray[np.int64]:
+    """Group free modes coupled with a ratio above a threshold into clusters.
+
+    Returns a (d, d) array of cluster labels, -1 for modes outside any cluster of
+    two or more.  Within a cluster the modes are nearly degenerate and are
+    propagated together (quasi-degenerate perturbation theory); between clusters
+    the coupling is eliminated to second order.  The threshold starts at
+    ``RESONANCE_RATIO`` and is raised tenfold (up to ``RESONANCE_RATIO_MAX``) while
+    the largest cluster has more than ``CLUSTER_MAX_SIZE`` members: a dense spectrum
+    (several qubits) would otherwise join most modes into one cluster too large to
+    propagate.  The coupling left between clusters counts in the error estimate.
+    """
+    d = K.shape[-1]
+    _, _, ratio1, _, _, ratio2 = coupling_ratios(K, fp, lam)
+    r1 = ratio1.max(axis=0)  # [a, c, b]: ab -- cb
+    r2 = ratio2.max(axis=0)  # [a, b, c]: ab -- ac
+    a1, c1, b1 = np.nonzero((r1 > RESONANCE_RATIO) & candidates[:, None, :] & candidates[None])
+    a2, b2, c2 = np.nonzero(
+        (r2 > RESONANCE_RATIO) & candidates[:, :, None] & candidates[:, None, :]
+    )
+    src = np.concatenate([a1 * d + b1, a2 * d + b2])
+    dst = np.concatenate([c1 * d + b1, a2 * d + c2])
+    weight = np.concatenate([r1[a1, c1, b1], r2[a2, b2, c2]])
+    labels = -np.ones((d, d), dtype=np.int64)
+    threshold = RESONANCE_RATIO
+    while src.size:
+        keep = weight > threshold
+        graph = coo_matrix((np.ones(int(keep.sum())), (src[keep], dst[keep])), shape=(d * d, d * d))
+        _, comp = connected_components(graph, directed=False)
+        comp = comp.reshape(d, d)
+        sizes = np.bincount(comp[candidates], minlength=comp.max() + 1)
+        if sizes.max() <= CLUSTER_MAX_SIZE or threshold >= RESONANCE_RATIO_MAX:
+            member = candidates & (sizes[comp] > 1) & (sizes[comp] <= CLUSTER_MAX_SIZE)
+            labels[member] = comp[member]
+            break
+        threshold *= 10.0
+    return labels
+
+
+def expm_stack(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    """Matrix exponentials of a stack of small matrices.
+
+    ``scipy.linalg.expm`` (scaling and squaring, batched) for matrices up to
+    ``EXPM_EIG_SIZE``; above, the eigen-decomposition (vectorised in LAPACK) where it
+    is well conditioned and ``expm`` for the few matrices where it is not.
+    """
+    if omega.shape[-1] <= EXPM_EIG_SIZE:
+        return expm(omega)
+    w, vec = np.linalg.eig(omega)
+    cond = np.linalg.cond(vec)
+    out = vec @ (np.exp(w)[..., None] * np.linalg.inv(vec))
+    bad = ~np.isfinite(cond) | (cond > 1e6)
+    if np.any(bad):
+        out[bad] = expm(omega[bad])
+    return out
+
+
+def propagate_clusters(
+    A: NDArray[np.complex128],
+    labels: NDArray[np.int64],
+    rate: NDArray[np.complex128],
+    K: NDArray[np.float64],
+    fp: NDArray[np.float64],
+    scheme: CollocationScheme,
+    h: float,
+) -> tuple[NDArray[np.complex128], NDArray[np.bool_]]:
+    """Propagate the free modes of each near-resonant cluster jointly over one step.
+
+    Within a cluster, dA/dx = M(x) A with M = diag(rate) plus the direct frame-
+    rotation couplings S between members; the common mean of the diagonal is
+    integrated exactly and the remainder by a fourth-order Magnus method on the
+    Lagrange interpolant of the node values, with substeps keeping |R dx| <= 0.5.
+    Clusters that would cost more than ``CLUSTER_WORK_LIMIT`` are left as they are
+    and returned in the ``skipped`` mask (the caller counts their amplitude as error).
+    """
+    d = A.shape[0]
+    out = A.copy()
+    skipped = np.zeros((d, d), dtype=bool)
+    m1 = scheme.tau.size
+    # Lagrange basis on tau for interpolation inside the step
+    vand = np.vander(scheme.tau, m1, increasing=True)
+    coef_of_values = np.linalg.inv(vand)  # values at tau -> polynomial coefficients
+    pending: list[tuple[NDArray, NDArray, NDArray, complex]] = []
+    for lab in np.unique(labels[labels >= 0]):
+        ma, mb = np.nonzero(labels == lab)
+        n = ma.size
+        # direct frame-rotation couplings [j, i]: mode i = (a, b) feeds j = (c, b)
+        # with S = -f' K_ca and j = (a, c) with S = +f' K_bc
+        same_a = ma[:, None] == ma[None, :]
+        same_b = mb[:, None] == mb[None, :]
+        f = fp[:, None, None]
+        M = np.where(same_b & ~same_a, -f * K[:, ma[:, None], ma[None, :]], 0.0)
+        M = M + np.where(same_a & ~same_b, f * K[:, mb[None, :], mb[:, None]], 0.0)
+        M = M.astype(complex)
+        M[:, np.arange(n), np.arange(n)] = rate[:, ma, mb]
+        mean = np.trace(M, axis1=1, axis2=2) / n
+        R = M - mean[:, None, None] * np.eye(n)[None]
+        coeffs = np.tensordot(coef_of_values, R, axes=(1, 0))  # polynomial in tau
+        norm = float(np.max(np.sum(np.abs(R), axis=-1)))  # infinity norm at the nodes
+        n_sub = max(1, int(np.ceil(h * norm / 0.5)))
+        if n_sub * n**3 > CLUSTER_WORK_LIMIT:
+            skipped |= labels == lab  # too costly: left undressed, counted as error
+            continue
+        dt = 1.0 / n_sub
+        # fourth-order Magnus step on each substep (Blanes, Casas & Ros, 2000):
+        # Omega = dt/2 (R1 + R2) + sqrt(3) dt^2 / 12 [R2, R1] at the Gauss points
+        mid = (np.arange(n_sub) + 0.5) * dt
+        g = dt / (2.0 * math.sqrt(3.0))
+        powers1 = (mid - g)[:, None] ** np.arange(m1)[None, :]
+        powers2 = (mid + g)[:, None] ** np.arange(m1)[None, :]
+        R1 = h * np.tensordot(powers1, coeffs, axes=(1, 0))
+        R2 = h * np.tensordot(powers2, coeffs, axes=(1, 0))
+        omega = 0.5 * dt * (R1 + R2) + (math.sqrt(3.0) * dt**2 / 12.0) * (R2 @ R1 - R1 @ R2)
+        pending.append((ma, mb, omega, np.exp(h * np.dot(scheme.w, mean))))
+    # exponentiate the substeps of all clusters of one size together
+    sizes = sorted({item[0].size for item in pending})
+    for n in sizes:
+        group = [item for item in pending if item[0].size == n]
+        props = expm_stack(np.concatenate([item[2] for item in group]))
+        start = 0
+        for ma, mb, omega, decay in group:
+            vec = A[ma, mb].astype(complex)
+            for prop in props[start : start + omega.shape[0]]:
+                vec = prop @ vec
+            start += omega.shape[0]
+            out[ma, mb] = vec * decay
+    return out, skipped
+
+
+def transient_rates(
+    K: NDArray[np.float64],
+    fp: NDArray[np.float64],
+    lam: NDArray[np.complex128],
+    W: NDArray[np.float64],
+    levin: NDArray[np.bool_],
+    labels: NDArray[np.int64] | None = None,
+) -> tuple[NDArray[np.complex128], NDArray[np.float64]]:
+    """Second-order correction mu_ab to the growth rate of free mode ab.
+
+    A free coherence c_ab ~ exp(int lam_ab) couples through the frame rotation
+    S = -f'[K, .] to other coherences and to the populations; eliminating those
+    (they are far off resonance) gives ``A_ab' = (lam_ab + mu_ab) A_ab`` with
+    ``mu_ab = sum_m S_(ab,m) S_(m,ab) / (lam_ab - lam_m)``, the standard second-order
+    adiabatic-elimination (Schrieffer-Wolff) shift.  Arrays are stacked over n
+    nodes: ``K, lam, W`` of shape (n, d, d), ``fp`` of shape (n,); ``lam`` and
+    ``W`` are scaled by tf (per unit x).  Also returns the largest perturbation
+    ratio |S| / |lam_ab - lam_m| of each free mode, a (d, d) array (the expansion
+    parameter; zero outside ``levin``).
+    """
+    d = K.shape[-1]
+    off = ~np.eye(d, dtype=bool)
+    lam_safe = np.where(off, lam, 1.0)
+    K2 = K**2
+    mask1, den1, ratio1, mask2, den2, ratio2 = coupling_ratios(K, fp, lam, labels)
+    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
+        t1 = np.where(mask1, K2[:, :, :, None] / np.where(mask1, den1, 1.0), 0.0).sum(axis=2)
+        t2 = np.where(mask2, K2[:, None, :, :] / np.where(mask2, den2, 1.0), 0.0).sum(axis=3)
+    # populations: -K_ab^2 (e_a - e_b)^T (lam_ab - W)^(-1) (e_a - e_b), expanded in W / lam
+    wd = np.einsum("naa->na", W)
+    quad = wd[:, :, None] + wd[:, None, :] - W - np.swapaxes(W, 1, 2)
+    q = (2.0 + quad / lam_safe) / lam_safe
+    mu = (fp**2)[:, None, None] * (t1 + t2 - K2 * q)
+    mu[:, ~levin] = 0.0
+    pop_ratio = np.abs(fp)[:, None, None] * np.abs(K) / np.abs(lam_safe)
+    eps = np.maximum(np.maximum(ratio1.max(axis=2), ratio2.max(axis=3)), pop_ratio).max(axis=0)
+    eps[~levin] = 0.0
+    return mu, eps
+
+
+def transient_dressing(
+    A: NDArray[np.complex128],
+    K: NDArray[np.float64],
+    fp: float,
+    lam: NDArray[np.complex128],
+    W: NDArray[np.float64],
+    labels: NDArray[np.int64] | None = None,
+) -> tuple[NDArray[np.float64], NDArray[np.complex128]]:
+    """Components that free modes with amplitudes ``A`` induce elsewhere.
+
+    Returns the population vector and the coherence matrix of
+    ``sum_ab A_ab v_ab`` with the first-order dressing
+    ``v_m = S_(m,ab) / (lam_ab - lam_m)``.
+    """
+    d = K.shape[0]
+    off = ~np.eye(d, dtype=bool)
+    lam_safe = np.where(off, lam, 1.0)
+    idx = np.arange(d)
+    # T1[c, b] = sum_a A_ab fp K_ca / (lam_cb - lam_ab), c not in {a, b}
+    den1 = lam[None, :, :] - lam[:, None, :]  # [a, c, b]
+    mask1 = np.ones((d, d, d), dtype=bool)
+    mask1[idx, idx, :] = False
+    mask1[:, idx, idx] = False
+    intra1, intra2 = intra_cluster(labels, d)
+    num1 = A[:, None, :] * K.T[:, :, None]  # [a, c, b]: A_ab K_ca
+    mask1 = mask1 & ~intra1
+    with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
+        t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
+    # T2[a, c] = -sum_b A_ab fp K_bc / (lam_ac - lam_ab), c not in {a, b}
+    den2 = lam[:, None, :] - lam[:, :, None]  # [a, b, c]
+    mask2 = mask1.transpose(0, 2, 1) & ~intra2
+    num2 = A[:, :, None] * K[None, :, :]  # [a, b, c]: A_ab K_bc
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)
+    coh = fp * (t1 + t2)
+    coh[~off] = 0.0
+    # populations: (lam_ab - W)^(-1) s_ab with s_ab = fp K_ba (e_a - e_b)
+    u1 = np.where(off, A * fp * K.T / lam_safe, 0.0)
+    u2 = np.where(off, A * fp * K.T / lam_safe**2, 0.0)
+    v1 = u1.sum(axis=1) - u1.sum(axis=0)
+    v2 = u2.sum(axis=1) - u2.sum(axis=0)
+    pop = np.real(v1 + W @ v2)
+    return pop, coh
