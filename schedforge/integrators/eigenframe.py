@@ -71,6 +71,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -904,7 +905,8 @@ def eigenframe_integrator(
     tol = system.degeneracy_tol
     # a played waveform with many edges (a filtered hold) needs a few steps per edge
     max_steps = max(MAX_STEPS, STEPS_PER_EDGE * int(getattr(schedule, "n_edges", 0)))
-    out = integrate_eigenframe(
+    run = partial(
+        integrate_eigenframe,
         model,
         schedule,
         tf_ns,
@@ -914,6 +916,7 @@ def eigenframe_integrator(
         degeneracy_tol=tol,
         max_steps=max_steps,
     )
+    out = run()
     phase = tf_ns * max(
         np.ptp(np.linalg.eigvalsh(ham.matrix(0.0))), np.ptp(np.linalg.eigvalsh(ham.matrix(1.0)))
     )
@@ -925,17 +928,7 @@ def eigenframe_integrator(
     ):
         # a sharper check than the running estimate: the dressing changes the result
         # by a first-order amount; what it leaves out is that times the ratio again
-        bare = integrate_eigenframe(
-            model,
-            schedule,
-            tf_ns,
-            p_start,
-            rtol=rtol,
-            atol=atol,
-            degeneracy_tol=tol,
-            max_steps=max_steps,
-            dress=False,
-        )
+        bare = run(dress=False)
         if bare["status"] == "ok":
             effect = _trace_distance(out["deviation"] - bare["deviation"])
             second = effect * out["stats"]["max_dressing_ratio"]
@@ -945,17 +938,7 @@ def eigenframe_integrator(
             out["stats"]["dressing_effect"] = effect
     if _needs_resolving(out) and phase <= RESOLVED_PHASE_LIMIT:
         # short anneals: resolve the oscillations instead, while that stays cheap
-        out = integrate_eigenframe(
-            model,
-            schedule,
-            tf_ns,
-            p_start,
-            rtol=rtol,
-            atol=atol,
-            mode="resolved",
-            degeneracy_tol=tol,
-            max_steps=max_steps,
-        )
+        out = run(mode="resolved")
     stats = dict(out["stats"])
     stats["integrator"] = "eigenframe"
     if out["status"] != "ok":
