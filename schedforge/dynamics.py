@@ -664,7 +664,7 @@ def simulate(
         integrator = HELD_INTEGRATOR
     name, fn = get_integrator(integrator, system)
     # Small matrices: one BLAS thread.  Measured (benchmarks/RESULTS.md): a second
-    # OpenBLAS thread makes 3-5 qubit points 1.4-2.5 times slower, even on an idle
+    # OpenBLAS thread makes 3-5 qubit points 1.4-2.7 times slower, even on an idle
     # 2-core machine (thread hand-off costs more than the products it splits).
     blas_threads = 1 if system.dim <= BLAS_SINGLE_THREAD_DIM else None
     try:
