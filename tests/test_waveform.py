@@ -223,6 +223,16 @@ def test_unfiltered_hold_reports_its_jumps() -> None:
     # max deviation of a hold: just before each edge, one sample step
     assert r.max_deviation == pytest.approx(0.1, rel=1e-12)
     assert r.schedule(1.0) == 1.0
+    # edges of the played waveform (the integrators' step budget grows with them):
+    # tf x sample rate = 10 sample changes; a 3-bit DAC on a ramp crosses 2^3 - 1 half
+    # levels; a filter keeps the edges; the design played as it is has none
+    assert r.schedule.n_edges == 10
+    assert realize(LinearSchedule(), 10.0, WaveformSpec(dac_bits=3)).schedule.n_edges == 7
+    filtered = realize(
+        LinearSchedule(), 10.0, WaveformSpec(sample_rate_gsps=1.0, bandwidth_mhz=200.0)
+    )
+    assert filtered.schedule.n_edges == 10
+    assert realize(LinearSchedule(), 10.0, WaveformSpec()).schedule.n_edges == 0
 
 
 def test_tf_off_the_sample_grid_is_said() -> None:
