@@ -21,6 +21,7 @@ import pytest
 
 from schedforge.dynamics import System, simulate
 from schedforge.integrators import eigenframe as ef
+from schedforge.integrators.collocation import lagrange_weights
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
@@ -159,6 +160,69 @@ def test_krylov_solve_of_the_coupled_step_matches_general(monkeypatch) -> None:
     fast = simulate(system, f, 10.0, integrator="eigenframe")
     assert fast.integrator == "eigenframe" and len(calls) >= fast.stats["steps"]
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+
+
+def test_core_block_of_strongly_rotating_pairs_matches_general(monkeypatch) -> None:
+    # Every resolved level pair may join the populations' direct solve (the strongest
+    # CORE_MAX_PAIRS of them do); the result must still agree with the reference.
+    system = System.from_spec(_spec_with(THREE_QUBITS))
+    f = make_schedule("beta", k_end=2)
+    ref = simulate(system, f, 6.0, integrator="general", rtol=1e-12, atol=1e-16)
+    built = []
+    real = ef._CoreBlock
+
+    def counted(*args, **kwargs):
+        built.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(ef, "CORE_COUPLING", 0.0)
+    monkeypatch.setattr(ef, "_CoreBlock", counted)
+    fast = simulate(system, f, 6.0, integrator="eigenframe")
+    assert fast.integrator == "eigenframe" and len(built) >= fast.stats["steps"]
+    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
+
+
+def test_core_block_solves_the_same_collocation_system(monkeypatch) -> None:
+    # One step near s = 0.5 of a 3-qubit anneal: with and without the core block the
+    # converged collocation solution is the same (the block only changes how the
+    # linear system is solved).
+    system = System.from_spec(_spec_with(THREE_QUBITS))
+    model = ef.EigenframeModel.from_system(system)
+    scheme = ef.collocation_scheme()
+    f = make_schedule("beta", k_end=2)
+    x0, h, tf = 0.45, 0.02, 50.0
+    fd = f.derivatives(x0 + h * scheme.tau, 1)
+    fr = model.frame(fd[0], None)
+    d = model.dim
+    rng = np.random.default_rng(3)
+    p0 = rng.normal(size=d) * 1e-3
+    p0 -= p0.mean()
+    c0 = (rng.normal(size=(d, d)) + 1j * rng.normal(size=(d, d))) * 1e-3
+    c0 = 0.5 * (c0 + c0.conj().T)
+    np.fill_diagonal(c0, 0.0)
+    levin = np.zeros((d, d), dtype=bool)
+    args = (h, p0, c0, levin, fr, fd[1], tf, scheme, 1e-12, 1e-16)
+    monkeypatch.setattr(ef, "CORE_COUPLING", math.inf)
+    plain = ef._slow_step(*args)
+    monkeypatch.setattr(ef, "CORE_COUPLING", 0.0)
+    assert ef._core_pairs(h, fr.K[1:], fd[1][1:], ~np.eye(d, dtype=bool))[0].size > 0
+    core = ef._slow_step(*args)
+    scale = max(np.max(np.abs(plain.P)), np.max(np.abs(plain.C)))
+    assert np.max(np.abs(core.P - plain.P)) <= 1e-11 * scale
+    assert np.max(np.abs(core.C - plain.C)) <= 1e-11 * scale
+
+
+def test_lagrange_weights_reproduce_polynomials_outside_the_nodes() -> None:
+    # the predictor extrapolates the last step's collocation polynomial: exact for
+    # polynomials of degree <= m, checked against numpy.polyval
+    scheme = ef.collocation_scheme()
+    rng = np.random.default_rng(11)
+    coef = rng.normal(size=scheme.tau.size)
+    t = np.linspace(-0.5, 3.0, 15)
+    w = lagrange_weights(scheme.tau, t)
+    np.testing.assert_allclose(w @ np.polyval(coef, scheme.tau), np.polyval(coef, t), rtol=1e-9)
+    # weights reach about 1e6 at t = 3, so rounding leaves about 1e-10 in their sum
+    np.testing.assert_allclose(w.sum(axis=1), 1.0, rtol=1e-8)
 
 
 # -- the long-anneal regime -------------------------------------------------------------

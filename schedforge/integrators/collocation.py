@@ -15,7 +15,7 @@ import numpy as np
 from numpy.polynomial import legendre
 from numpy.typing import NDArray
 
-__all__ = ["DEFAULT_STAGES", "CollocationScheme", "collocation_scheme"]
+__all__ = ["DEFAULT_STAGES", "CollocationScheme", "collocation_scheme", "lagrange_weights"]
 
 #: Collocation stages per step (Radau IIA of order 2m - 1).
 DEFAULT_STAGES = 8
@@ -51,6 +51,17 @@ class CollocationScheme:
     w: NDArray[np.float64]
     Acum: NDArray[np.float64]
     tail: NDArray[np.float64]
+
+
+def lagrange_weights(nodes: NDArray[np.float64], t: NDArray[np.float64]) -> NDArray[np.float64]:
+    """``out[i, j] = l_j(t_i)``: the Lagrange basis on ``nodes`` evaluated at ``t``."""
+    nodes = np.asarray(nodes, dtype=float)
+    t = np.asarray(t, dtype=float)
+    diff = t[:, None, None] - nodes[None, None, :]  # [i, j, k] = t_i - x_k
+    denom = nodes[:, None] - nodes[None, :]  # [j, k] = x_j - x_k
+    eye = np.eye(nodes.size, dtype=bool)
+    num = np.where(eye[None], 1.0, diff)
+    return np.prod(num / np.where(eye, 1.0, denom)[None], axis=2)
 
 
 def _lagrange_integrals(nodes: NDArray[np.float64], upper: NDArray[np.float64]) -> NDArray:

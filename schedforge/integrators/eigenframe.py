@@ -80,7 +80,7 @@ from scipy.linalg import lu_factor, lu_solve
 from scipy.sparse.linalg import LinearOperator, gmres
 
 from ..units import GHZ_TO_RAD_PER_NS
-from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme
+from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme, lagrange_weights
 from .free_modes import (
     propagate_clusters,
     resonant_clusters,
@@ -114,11 +114,19 @@ MAX_STEPS = 100_000
 STEPS_PER_EDGE = 60
 #: Block-Jacobi sweeps of the slow collocation system before switching to GMRES.
 SLOW_ITERATION_LIMIT = 40
+#: The collocation system of a step is solved to this fraction of the local error target.
+SLOW_SOLVE_TOL = 1e-2
 #: A sweep that shrinks the change by less than this factor hands over to GMRES.
 SLOW_CONTRACTION = 0.5
 #: GMRES restart length and number of restarts for the slow collocation system.
 KRYLOV_RESTART = 40
 KRYLOV_MAXITER = 5
+#: A resolved coherence whose frame-rotation coupling to its two populations turns by
+#: more than this over a step (h |f'| |K_ab|, near a narrow avoided crossing) is
+#: solved together with the populations instead of by block Jacobi.
+CORE_COUPLING = 0.05
+#: At most this many level pairs (the most strongly coupled) join the populations.
+CORE_MAX_PAIRS = 8
 
 
 # --------------------------------------------------------------------------
@@ -315,6 +323,87 @@ class _SlowStep:
     iterations: int
 
 
+class _CoreBlock:
+    """Populations solved together with the most strongly rotating resolved coherences.
+
+    Near a narrow avoided crossing the frame turns fast within one pair of levels:
+    the rotation couples the pair's populations and coherences so strongly that block
+    Jacobi contracts slowly and GMRES needs many sweeps.  These few coherences (both
+    orders of each pair) join the population block; the joint collocation system is
+    solved through the Schur complement of the (already factored) population matrix,
+    so the population factorisation is reused and only a small complex system of
+    ``m * n_core`` unknowns is added.
+    """
+
+    def __init__(
+        self,
+        h: float,
+        A: NDArray[np.float64],
+        K: NDArray[np.float64],
+        fp: NDArray[np.float64],
+        lam: NDArray[np.complex128],
+        a: NDArray[np.intp],
+        b: NDArray[np.intp],
+        pop_solve: Any,
+    ) -> None:
+        m, d = A.shape[0], K.shape[-1]
+        nc = a.size
+        self.a, self.b, self.pop_solve = a, b, pop_solve
+        cols = np.arange(nc)
+        kab = fp[:, None] * K[:, a, b]  # (m, nc): f' K_ab at the Radau nodes
+        # -f' [K, rho]: population a and b rows from coherence (a, b), and back
+        self.Bpc = np.zeros((m, d, nc))
+        self.Bpc[:, a, cols] = -kab
+        self.Bpc[:, b, cols] = kab
+        self.Bcp = np.zeros((m, nc, d))
+        self.Bcp[:, cols, a] = kab
+        self.Bcp[:, cols, b] = -kab
+        hA = h * A
+        Mpc = -np.einsum("ij,jau->iaju", hA, self.Bpc).reshape(m * d, m * nc)
+        self.Mcp = -np.einsum("ij,jua->iuja", hA, self.Bcp).reshape(m * nc, m * d)
+        Mcc = np.eye(m * nc) - np.einsum("ij,ju,uv->iujv", hA, lam, np.eye(nc)).reshape(
+            m * nc, m * nc
+        )
+        self.Z = pop_solve(Mpc)  # real
+        self.S_inv = np.linalg.inv(Mcc - self.Mcp @ self.Z)
+
+    def internal(
+        self, P: NDArray[np.complex128], Cc: NDArray[np.complex128]
+    ) -> tuple[NDArray[np.complex128], NDArray[np.complex128]]:
+        """The coupling within the block at the Radau nodes: (population rows, core rows)."""
+        return (
+            np.einsum("jau,ju->ja", self.Bpc, Cc),
+            np.einsum("jua,ja->ju", self.Bcp, P),
+        )
+
+    def solve(
+        self, rhs_p: NDArray[np.complex128], rhs_c: NDArray[np.complex128]
+    ) -> tuple[NDArray[np.complex128], NDArray[np.complex128]]:
+        """Solve the joint system for the stacked right-hand sides."""
+        xp = _real_apply(self.pop_solve, rhs_p)
+        xc = self.S_inv @ (rhs_c - _real_apply(self.Mcp.__matmul__, xp))
+        return xp - _real_apply(self.Z.__matmul__, xc), xc
+
+
+def _real_apply(op: Any, v: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    """A real linear map applied to a complex vector (real and imaginary parts as columns)."""
+    out = op(np.column_stack([v.real, v.imag]))
+    return out[:, 0] + 1j * out[:, 1]
+
+
+def _core_pairs(
+    h: float, K: NDArray[np.float64], fp: NDArray[np.float64], resolved: NDArray[np.bool_]
+) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Coherences (a, b) and (b, a) of the level pairs that join the population block."""
+    d = K.shape[-1]
+    iu, ju = np.triu_indices(d, 1)
+    strength = h * np.max(np.abs(fp)) * np.max(np.abs(K[:, iu, ju]), axis=0)
+    chosen = np.flatnonzero(resolved[iu, ju] & (strength >= CORE_COUPLING))
+    chosen = chosen[np.argsort(strength[chosen])[::-1][:CORE_MAX_PAIRS]]
+    pa, pb = iu[chosen], ju[chosen]
+    return np.concatenate([pa, pb]), np.concatenate([pb, pa])
+
+
 def _slow_step(
     h: float,
     p0: NDArray[np.float64],
@@ -326,6 +415,7 @@ def _slow_step(
     scheme: CollocationScheme,
     rtol: float,
     atol: float,
+    guess: tuple[NDArray[Any], NDArray[Any]] | None = None,
 ) -> _SlowStep:
     """Collocation for populations and coherences over one step.
 
@@ -333,7 +423,9 @@ def _slow_step(
     (their oscillation is resolved); where it is True they are replaced by the
     slow particular solution of their equation (Levin collocation on the m + 1
     nodes) and ``c0`` is not used.  ``fr`` holds frame data at the nodes
-    ``x0 + h tau``, ``fp`` is f' there.
+    ``x0 + h tau``, ``fp`` is f' there.  ``guess`` gives starting values (P, C)
+    at the m + 1 nodes (a prediction from the previous step), else the start value
+    is held constant.
 
     The collocation equations are linear.  Each population and coherence block is
     solved exactly for a given frame-rotation coupling (block Jacobi); when that
@@ -372,6 +464,12 @@ def _slow_step(
         lam_r = lam[1:, ri, rj].T  # (n_resolved, m)
         rmat = np.eye(m)[None] - h * scheme.A[None] * lam_r[:, None, :]
         rinv = np.linalg.inv(rmat)
+    core_a, core_b = _core_pairs(h, fr.K[1:], fp[1:], resolved)
+    core = None
+    if core_a.size:
+        core = _CoreBlock(
+            h, scheme.A, fr.K[1:], fp[1:], lam[1:, core_a, core_b], core_a, core_b, pop_solve
+        )
     sigma_comm = fr.K * (fr.pi[:, None, :] - fr.pi[:, :, None])  # [K, diag(pi)]
     eye = np.eye(d)
 
@@ -390,13 +488,21 @@ def _slow_step(
         Gp = np.einsum("naa->na", G)
         if forced:
             Gp = Gp - fp[:, None] * fr.dpi
+        if core is not None:  # the coupling within the core block is solved for
+            from_core, to_core = core.internal(P[1:], C[1:, core_a, core_b])
+            Gp[1:] = Gp[1:] - from_core
+            core_start = c0[core_a, core_b] if forced else np.zeros(core_a.size, dtype=complex)
+            core_rhs = core_start[None] + h * scheme.A @ (G[1:, core_a, core_b] - to_core)
         rhs = (h * scheme.A @ Gp[1:]).reshape(m * d)
         if forced:
             rhs = rhs + np.tile(p0, m)
-        sol = pop_solve(np.column_stack([rhs.real, rhs.imag]))
+        if core is None:
+            pops = _real_apply(pop_solve, rhs)
+        else:
+            pops, core_c = core.solve(rhs, core_rhs.reshape(-1))
         P_new = np.empty_like(P)
         P_new[0] = p0 if forced else 0.0
-        P_new[1:] = (sol[:, 0] + 1j * sol[:, 1]).reshape(m, d)
+        P_new[1:] = pops.reshape(m, d)
         C_new = np.zeros_like(C)
         if li.size:
             C_new[:, li, lj] = (linv @ G[:, li, lj].T[..., None])[..., 0].T
@@ -405,13 +511,21 @@ def _slow_step(
             rhs_c = start[:, None] + h * G[1:, ri, rj].T @ scheme.A.T  # (n_resolved, m)
             C_new[0, ri, rj] = start
             C_new[1:, ri, rj] = (rinv @ rhs_c[..., None])[..., 0].T
+        if core is not None:
+            C_new[1:, core_a, core_b] = core_c.reshape(m, core_a.size)
         return P_new, C_new
 
     def size(P: NDArray[Any], C: NDArray[Any]) -> float:
         return atol + rtol * max(np.max(np.abs(P)), np.max(np.abs(C)))
 
-    P = np.repeat(p0[None], m + 1, axis=0).astype(complex)
-    C = np.repeat(np.where(levin, 0.0, c0)[None], m + 1, axis=0)
+    if guess is None:
+        P = np.repeat(p0[None], m + 1, axis=0).astype(complex)
+        C = np.repeat(np.where(levin, 0.0, c0)[None], m + 1, axis=0)
+    else:
+        P = guess[0].astype(complex)
+        C = guess[1].astype(complex)
+        P[0] = p0
+        C[0] = np.where(levin, C[0], c0)
     iterations = 0
     converged = False
     previous = math.inf
@@ -419,14 +533,14 @@ def _slow_step(
         P_new, C_new = block_solve(P, C, True)
         change = max(np.max(np.abs(P_new - P)), np.max(np.abs(C_new - C)))
         P, C = P_new, C_new
-        if change <= 1e-3 * size(P, C):
+        if change <= SLOW_SOLVE_TOL * size(P, C):
             converged = True
             break
         if iterations >= 3 and change > SLOW_CONTRACTION * previous:
             break  # too slow or diverging: solve the coupled system instead
         previous = change
     if not converged and np.all(np.isfinite(P)) and np.all(np.isfinite(C)):
-        P, C, krylov_iterations = _krylov_solve(block_solve, P, C, 1e-3 * size(P, C))
+        P, C, krylov_iterations = _krylov_solve(block_solve, P, C, SLOW_SOLVE_TOL * size(P, C))
         iterations += krylov_iterations
     P = np.real(P)
     tail = max(
@@ -492,6 +606,40 @@ def _krylov_solve(
 # --------------------------------------------------------------------------
 # the driver
 # --------------------------------------------------------------------------
+#: Extrapolating the last step's collocation polynomial further than this many of its
+#: lengths amplifies its error too much; beyond, a quadratic through its last nodes.
+PREDICTION_REACH = 2.0
+
+
+def _predict(
+    previous: tuple[float, float, NDArray[Any], NDArray[Any]] | None,
+    x: float,
+    h: float,
+    tau: NDArray[np.float64],
+    entering: NDArray[np.bool_],
+) -> tuple[NDArray[Any], NDArray[Any]] | None:
+    """Starting values at the nodes ``x + h tau`` from the last accepted step.
+
+    The collocation polynomial of that step, extrapolated (the usual predictor of
+    implicit Runge-Kutta codes, Hairer & Wanner 1996, IV.8).  Coherences entering the
+    exponential treatment start from zero: their old values carry the oscillation
+    that the new step splits off.  None when there is no previous step.
+    """
+    if previous is None:
+        return None
+    x_old, h_old, P_old, C_old = previous
+    t = (x + h * tau - x_old) / h_old
+    if t[-1] <= 1.0 + PREDICTION_REACH:
+        weights = lagrange_weights(tau, t)
+    else:
+        weights = np.zeros((t.size, tau.size))
+        weights[:, -3:] = lagrange_weights(tau[-3:], t)
+    P = weights @ P_old
+    C = np.tensordot(weights, C_old, axes=(1, 0))
+    C[:, entering] = 0.0
+    return P, C
+
+
 def _slowest_relaxation(W: NDArray[np.float64], pi: NDArray[np.float64]) -> float:
     """Smallest non-zero relaxation rate of the Pauli generator W (same units as W).
 
@@ -613,6 +761,7 @@ def integrate_eigenframe(
     last_frame = frame0
     last_fd = np.array([[f0[0]], [f0[1]]])
     last_labels = None
+    previous: tuple[float, float, NDArray, NDArray] | None = None  # last accepted step
 
     def fail(message: str) -> dict[str, Any]:
         return {
@@ -672,8 +821,9 @@ def integrate_eigenframe(
             if not (labels >= 0).any():
                 labels = None
         p0, c0, A0 = p, c.copy(), A.copy()
+        guess = _predict(previous, x, h, scheme.tau, levin & ~was_levin)
         with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
-            res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol)
+            res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol, guess)
         if entering.any() and not dressed:
             A_new = A0 + np.where(entering, c0 - res.C[0], 0.0)
         elif entering.any():
@@ -685,7 +835,9 @@ def integrate_eigenframe(
                 pop_d, coh_d = transient_dressing(
                     A_try, fr.K[0], fd[1][0], lam_nodes[0], tf * fr.W[0], labels
                 )
-                res = _slow_step(h, p0 - pop_d, c0, levin, fr, fd[1], tf, scheme, rtol, atol)
+                res = _slow_step(
+                    h, p0 - pop_d, c0, levin, fr, fd[1], tf, scheme, rtol, atol, (res.P, res.C)
+                )
             A_new = A0 + np.where(entering, c0 - res.C[0] - coh_d, 0.0)
             p0 = p0 - pop_d
         else:
@@ -760,6 +912,7 @@ def integrate_eigenframe(
         stats["min_bohr_gap_ghz"] = min(
             stats["min_bohr_gap_ghz"], float(np.min(fr.min_bohr_gap[1:])) / (2 * math.pi)
         )
+        previous = (x, h, res.P, res.C)
         p, c, A = res.P[-1].copy(), res.C[-1].copy(), A_new
         was_levin = levin
         last_labels = labels

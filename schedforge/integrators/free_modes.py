@@ -197,50 +197,50 @@ def propagate_clusters(
     # Lagrange basis on tau for interpolation inside the step
     vand = np.vander(scheme.tau, m1, increasing=True)
     coef_of_values = np.linalg.inv(vand)  # values at tau -> polynomial coefficients
-    pending: list[tuple[NDArray, NDArray, NDArray, complex]] = []
+    members: dict[int, list[tuple[NDArray, NDArray]]] = {}
     for lab in np.unique(labels[labels >= 0]):
         ma, mb = np.nonzero(labels == lab)
-        n = ma.size
+        members.setdefault(ma.size, []).append((ma, mb))
+    # clusters of one size are handled together, as stacks
+    for n, group in members.items():
+        ma = np.stack([item[0] for item in group])  # (G, n)
+        mb = np.stack([item[1] for item in group])
         # direct frame-rotation couplings [j, i]: mode i = (a, b) feeds j = (c, b)
         # with S = -f' K_ca and j = (a, c) with S = +f' K_bc
-        same_a = ma[:, None] == ma[None, :]
-        same_b = mb[:, None] == mb[None, :]
-        f = fp[:, None, None]
-        M = np.where(same_b & ~same_a, -f * K[:, ma[:, None], ma[None, :]], 0.0)
-        M = M + np.where(same_a & ~same_b, f * K[:, mb[None, :], mb[:, None]], 0.0)
+        same_a = (ma[:, :, None] == ma[:, None, :])[:, None]  # (G, 1, n, n)
+        same_b = (mb[:, :, None] == mb[:, None, :])[:, None]
+        f = fp[None, :, None, None]
+        Ka = np.moveaxis(K[:, ma[:, :, None], ma[:, None, :]], 0, 1)  # (G, nodes, n, n)
+        Kb = np.moveaxis(K[:, mb[:, None, :], mb[:, :, None]], 0, 1)
+        M = np.where(same_b & ~same_a, -f * Ka, 0.0) + np.where(same_a & ~same_b, f * Kb, 0.0)
         M = M.astype(complex)
-        M[:, np.arange(n), np.arange(n)] = rate[:, ma, mb]
-        mean = np.trace(M, axis1=1, axis2=2) / n
-        R = M - mean[:, None, None] * np.eye(n)[None]
-        coeffs = np.tensordot(coef_of_values, R, axes=(1, 0))  # polynomial in tau
-        norm = float(np.max(np.sum(np.abs(R), axis=-1)))  # infinity norm at the nodes
-        n_sub = max(1, int(np.ceil(h * norm / 0.5)))
-        if n_sub * n**3 > CLUSTER_WORK_LIMIT:
-            skipped |= labels == lab  # too costly: left undressed, counted as error
-            continue
-        dt = 1.0 / n_sub
-        # fourth-order Magnus step on each substep (Blanes, Casas & Ros, 2000):
-        # Omega = dt/2 (R1 + R2) + sqrt(3) dt^2 / 12 [R2, R1] at the Gauss points
-        mid = (np.arange(n_sub) + 0.5) * dt
-        g = dt / (2.0 * math.sqrt(3.0))
-        powers1 = (mid - g)[:, None] ** np.arange(m1)[None, :]
-        powers2 = (mid + g)[:, None] ** np.arange(m1)[None, :]
-        R1 = h * np.tensordot(powers1, coeffs, axes=(1, 0))
-        R2 = h * np.tensordot(powers2, coeffs, axes=(1, 0))
-        omega = 0.5 * dt * (R1 + R2) + (math.sqrt(3.0) * dt**2 / 12.0) * (R2 @ R1 - R1 @ R2)
-        pending.append((ma, mb, omega, np.exp(h * np.dot(scheme.w, mean))))
-    # exponentiate the substeps of all clusters of one size together
-    sizes = sorted({item[0].size for item in pending})
-    for n in sizes:
-        group = [item for item in pending if item[0].size == n]
-        props = expm_stack(np.concatenate([item[2] for item in group]))
-        start = 0
-        for ma, mb, omega, decay in group:
-            vec = A[ma, mb].astype(complex)
-            for prop in props[start : start + omega.shape[0]]:
-                vec = prop @ vec
-            start += omega.shape[0]
-            out[ma, mb] = vec * decay
+        M[:, :, np.arange(n), np.arange(n)] = np.moveaxis(rate[:, ma, mb], 0, 1)
+        mean = np.trace(M, axis1=2, axis2=3) / n  # (G, nodes)
+        R = M - mean[:, :, None, None] * np.eye(n)
+        coeffs = np.moveaxis(np.tensordot(coef_of_values, R, axes=(1, 1)), 0, 1)  # polynomial
+        norm = np.max(np.sum(np.abs(R), axis=-1), axis=(1, 2))  # infinity norm at the nodes
+        n_sub = np.maximum(1, np.ceil(h * norm / 0.5)).astype(int)
+        too_costly = n_sub * n**3 > CLUSTER_WORK_LIMIT
+        for g in np.flatnonzero(too_costly):  # left undressed, counted as error
+            skipped[ma[g], mb[g]] = True
+        decay = np.exp(h * mean @ scheme.w)  # (G,)
+        for subs in np.unique(n_sub[~too_costly]):
+            sel = np.flatnonzero((n_sub == subs) & ~too_costly)
+            dt = 1.0 / subs
+            # fourth-order Magnus step on each substep (Blanes, Casas & Ros, 2000):
+            # Omega = dt/2 (R1 + R2) + sqrt(3) dt^2 / 12 [R2, R1] at the Gauss points
+            mid = (np.arange(subs) + 0.5) * dt
+            g = dt / (2.0 * math.sqrt(3.0))
+            powers1 = (mid - g)[:, None] ** np.arange(m1)[None, :]
+            powers2 = (mid + g)[:, None] ** np.arange(m1)[None, :]
+            R1 = h * np.einsum("sk,gkij->gsij", powers1, coeffs[sel])
+            R2 = h * np.einsum("sk,gkij->gsij", powers2, coeffs[sel])
+            omega = 0.5 * dt * (R1 + R2) + (math.sqrt(3.0) * dt**2 / 12.0) * (R2 @ R1 - R1 @ R2)
+            props = expm_stack(omega.reshape(-1, n, n)).reshape(sel.size, subs, n, n)
+            vec = A[ma[sel], mb[sel]].astype(complex)  # (G_sel, n)
+            for k in range(subs):
+                vec = np.einsum("gij,gj->gi", props[:, k], vec)
+            out[ma[sel], mb[sel]] = vec * decay[sel, None]
     return out, skipped
 
 
