@@ -15,6 +15,7 @@ Parts:
 - ``qubits``: wall time per point against qubit count 1..8 at tf = 1e3 ns (invented,
   fully connected Ising instances with seeded random fields and couplings), each point
   in a child process stopped after 5 minutes.
+- ``qubits_long``: the same for 2..5 qubits at tf = 1e4 and 1e5 ns.
 - ``sweep``: 5 values of k_end x 17 tf from 1e1 to 1e5 ns for the driven qubit, serially.
 
 Each part prints its lines; copy them to benchmarks/RESULTS.md with date and machine.
@@ -116,7 +117,7 @@ def qubit_point(n: int, tf: float = 1e3) -> None:
     r, w = _timed(simulate, system, f, tf)
     est = r.stats.get("free_mode_error_estimate")
     print(
-        f"qubits  n={n}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
+        f"qubits  n={n} tf={tf:g}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
         f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
         f"trace distance {r.trace_distance:.12e}, free-mode error estimate "
         f"{'n/a' if est is None else f'{est:.2g}'}, "
@@ -125,13 +126,24 @@ def qubit_point(n: int, tf: float = 1e3) -> None:
     )
 
 
-def part_qubits(max_qubits: int = 8, limit_s: float = 300.0) -> None:
-    for n in range(1, max_qubits + 1):
-        cmd = [sys.executable, __file__, "--qubit-point", str(n)]
+def _qubit_points(counts: range, tf: float, limit_s: float) -> None:
+    """Run ``qubit_point`` for each qubit count in a child process, under a time limit."""
+    for n in counts:
+        cmd = [sys.executable, __file__, "--qubit-point", str(n), "--tf", repr(tf)]
         try:
             subprocess.run(cmd, check=False, timeout=limit_s)
         except subprocess.TimeoutExpired:
-            print(f"qubits  n={n}: stopped after {limit_s:.0f} s", flush=True)
+            print(f"qubits  n={n} tf={tf:g}: stopped after {limit_s:.0f} s", flush=True)
+
+
+def part_qubits(max_qubits: int = 8, limit_s: float = 300.0) -> None:
+    _qubit_points(range(1, max_qubits + 1), 1e3, limit_s)
+
+
+def part_qubits_long(limit_s: float = 300.0) -> None:
+    """2 to 5 qubits at tf = 1e4 and 1e5 ns (the equilibrated regime)."""
+    for tf in (1e4, 1e5):
+        _qubit_points(range(2, 6), tf, limit_s)
 
 
 def part_sweep() -> None:
@@ -153,6 +165,7 @@ PARTS = {
     "general": part_general,
     "tf": part_tf,
     "qubits": part_qubits,
+    "qubits_long": part_qubits_long,
     "sweep": part_sweep,
 }
 
@@ -161,9 +174,10 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--parts", nargs="+", choices=sorted(PARTS), default=list(PARTS))
     parser.add_argument("--qubit-point", type=int, help=argparse.SUPPRESS)
+    parser.add_argument("--tf", type=float, default=1e3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.qubit_point is not None:
-        qubit_point(args.qubit_point)
+        qubit_point(args.qubit_point, args.tf)
         return
     print(
         f"# {datetime.now(UTC).isoformat(timespec='seconds')}  {platform.machine()} "

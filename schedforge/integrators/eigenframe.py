@@ -109,6 +109,9 @@ LEVIN_THRESHOLD = 3.0
 #: Population blocks (stages x levels) up to this size are inverted explicitly, larger
 #: ones LU-factored.
 SMALL_POPULATION_BLOCK = 128
+#: Without dressing, free modes with less than this fraction of the largest amplitude
+#: count wholly in the error estimate (their perturbation ratios are not computed).
+BARE_RATIO_AMPLITUDE = 1e-3
 #: Largest growth of the step after an accepted one.
 STEP_GROWTH_MAX = 4.0
 #: Step budget (accepted plus rejected) of one run.
@@ -874,10 +877,14 @@ def integrate_eigenframe(
                     # expansion failed there, which eps (in the error estimate) shows
                     rate = np.minimum(rate.real, 0.0) + 1j * rate.imag
                 else:  # undressed: the first-order terms are what is left out, and at
-                    # most the whole amplitude (a nearly resonant partner takes all of it)
+                    # most the whole amplitude (a nearly resonant partner takes all of it);
+                    # modes of negligible amplitude count wholly, which saves computing
+                    # their ratios
                     ends = [0, -1]
-                    eps = perturbation_ratios(fr.K[ends], fd[1][ends], lam_nodes[ends], free)
-                    eps = np.minimum(eps, 1.0)
+                    weighty = free & (np.abs(A_new) >= BARE_RATIO_AMPLITUDE * amp)
+                    eps = np.where(free, 1.0, 0.0)
+                    ratios = perturbation_ratios(fr.K[ends], fd[1][ends], lam_nodes[ends], weighty)
+                    eps[weighty] = np.minimum(ratios[weighty], 1.0)
             growth = h * np.einsum("j,jab->ab", scheme.w, rate)
             undressed = 0.0
             A_start = A_new
