@@ -18,10 +18,12 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
+from scipy.linalg import expm as scipy_expm
 
 from schedforge.dynamics import System, simulate
 from schedforge.integrators import eigenframe as ef
 from schedforge.integrators.collocation import lagrange_weights
+from schedforge.integrators.free_modes import expm_stack
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
@@ -234,6 +236,21 @@ def test_undressed_free_mode_estimate_bounds_the_error(monkeypatch, problem, tf,
     assert error > 1e-9  # the bare run does leave something out
     assert estimate >= error, (estimate, error)
     assert estimate <= 1e3 * error  # and the estimate is not vacuous
+
+
+@pytest.mark.parametrize("n", [2, 3, 5, 7, 12])
+def test_stacked_matrix_exponentials_match_scipy(n: int) -> None:
+    # closed form (2 x 2), stacked Taylor scaling and squaring (up to EXPM_TAYLOR_SIZE)
+    # and scipy's own expm above, against scipy.linalg.expm one matrix at a time
+    rng = np.random.default_rng(n)
+    size = rng.uniform(1e-9, 3.0, (200, 1, 1))
+    M = (rng.normal(size=(200, n, n)) + 1j * rng.normal(size=(200, n, n))) * size
+    M += np.eye(n) * (-rng.uniform(0, 5, (200, 1, 1)) + 3j * rng.normal(size=(200, 1, 1)))
+    M[:5] = 1e-3j * np.eye(n) + 1e-10 * M[:5]  # nearly degenerate (the 2 x 2 series branch)
+    got = expm_stack(M)
+    for k in range(M.shape[0]):
+        ref = scipy_expm(M[k])
+        assert np.max(np.abs(got[k] - ref)) <= 1e-13 * np.max(np.abs(ref))
 
 
 def test_lagrange_weights_reproduce_polynomials_outside_the_nodes() -> None:

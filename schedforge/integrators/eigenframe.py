@@ -112,6 +112,9 @@ SMALL_POPULATION_BLOCK = 128
 #: Without dressing, free modes with less than this fraction of the largest amplitude
 #: count wholly in the error estimate (their perturbation ratios are not computed).
 BARE_RATIO_AMPLITUDE = 1e-3
+#: Free modes whose largest amplitude is below this fraction of ``atol`` run bare and
+#: unclustered: whatever their dressing would change is far below the error target.
+FREE_MODE_NEGLIGIBLE = 1e-3
 #: Largest growth of the step after an accepted one.
 STEP_GROWTH_MAX = 4.0
 #: Step budget (accepted plus rejected) of one run.
@@ -823,7 +826,8 @@ def integrate_eigenframe(
         # resolved again after a shorter step: folding them back would make the steps
         # follow their oscillation
         candidates = levin | (A != 0)
-        free_modes_matter = np.max(np.abs(A), initial=0.0) > 1e-6 * atol or entering.any()
+        negligible = FREE_MODE_NEGLIGIBLE * atol
+        free_modes_matter = np.max(np.abs(A), initial=0.0) > negligible or entering.any()
         if dressed and candidates.any() and free_modes_matter:
             labels = resonant_clusters(fr.K, fd[1], lam_nodes, candidates)
             if not (labels >= 0).any():
@@ -869,7 +873,7 @@ def integrate_eigenframe(
             rate = lam_nodes
             eps = np.zeros((d, d))
             amp = float(np.max(np.abs(A_new)))
-            if dress and amp > 1e-6 * atol:  # the dressing only while free modes matter
+            if dress and amp > negligible:  # the dressing only while free modes matter
                 if dressed:
                     mu, eps = transient_rates(fr.K, fd[1], lam_nodes, tf * fr.W, free, labels)
                     rate = rate + mu
@@ -889,7 +893,7 @@ def integrate_eigenframe(
             undressed = 0.0
             A_start = A_new
             A_single = np.where(free, A_new * np.exp(growth), 0.0)
-            if labels is not None and amp > 1e-6 * atol:
+            if labels is not None and amp > negligible:
                 in_cluster = labels >= 0
                 A_cl, skipped = propagate_clusters(
                     np.where(free, A_new, 0.0), labels, rate, fr.K, fd[1], scheme, h
