@@ -136,8 +136,8 @@ def _qubit_points(counts: range, tf: float, limit_s: float) -> None:
             print(f"qubits  n={n} tf={tf:g}: stopped after {limit_s:.0f} s", flush=True)
 
 
-def part_qubits(max_qubits: int = 8, limit_s: float = 300.0) -> None:
-    _qubit_points(range(1, max_qubits + 1), 1e3, limit_s)
+def part_qubits(limit_s: float = 300.0) -> None:
+    _qubit_points(range(1, 9), 1e3, limit_s)
 
 
 def part_qubits_long(limit_s: float = 300.0) -> None:
@@ -175,6 +175,17 @@ def main() -> None:
     parser.add_argument("--parts", nargs="+", choices=sorted(PARTS), default=list(PARTS))
     parser.add_argument("--qubit-point", type=int, help=argparse.SUPPRESS)
     parser.add_argument("--tf", type=float, default=1e3, help=argparse.SUPPRESS)
+    parser.add_argument(
+        "--qubits",
+        type=int,
+        nargs=2,
+        default=(1, 8),
+        metavar=("FIRST", "LAST"),
+        help="qubit counts of the qubits part (default 1 8)",
+    )
+    parser.add_argument(
+        "--limit", type=float, default=300.0, help="seconds per multi-qubit point (default 300)"
+    )
     args = parser.parse_args()
     if args.qubit_point is not None:
         qubit_point(args.qubit_point, args.tf)
@@ -185,7 +196,12 @@ def main() -> None:
         f"load {os.getloadavg()[0]:.1f}"
     )
     for name in args.parts:
-        PARTS[name]()
+        if name == "qubits":
+            _qubit_points(range(args.qubits[0], args.qubits[1] + 1), 1e3, args.limit)
+        elif name == "qubits_long":
+            part_qubits_long(args.limit)
+        else:
+            PARTS[name]()
 
 
 if __name__ == "__main__":

@@ -222,7 +222,7 @@ def test_undressed_free_mode_estimate_bounds_the_error(monkeypatch, problem, tf,
     # first-order terms eps_ab |A_ab|.  Forced here on small systems, the estimate must
     # exceed the true difference (trace norm) from a run that resolves every
     # oscillation (itself checked against the general integrator above).  Measured
-    # margins: 7-9x for the qubit, 11x for three qubits (29x for two at 300 ns).
+    # margins: 3.4-4.8x for the qubit, 11x for three qubits (29x for two at 300 ns).
     spec = load_spec("builtin:driven-qubit") if problem is None else _spec_with(problem)
     system = System.from_spec(spec)
     model = ef.EigenframeModel.from_system(system)

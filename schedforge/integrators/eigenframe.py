@@ -909,9 +909,9 @@ def integrate_eigenframe(
             # modes (conjugate pairs once), fed into populations that relax at the
             # slowest population rate.  Calibrated against runs resolving every
             # oscillation (2026-12-02): dressed, the estimate exceeded the trace-norm
-            # error 3-75x for a qubit but fell 20-30x short of it for two qubits, whose
-            # trace distance still agreed with the general integrator to 4e-8; bare,
-            # it exceeded the error 7-160x for one to three qubits.  The
+            # error 1.4-37x for a qubit but fell up to 70x short of it for two qubits,
+            # whose trace distance still agreed with the general integrator to 4e-8;
+            # bare, it exceeded the error 3.4-80x for one to three qubits.  The
             # effect-weighted mean ratio sum(eps^2 |A|) / sum(eps |A|) relates what the
             # dressing leaves out to the size of the dressing (the caller's check).
             relax = _slowest_relaxation(tf * fr.W[0], fr.pi[0])
