@@ -144,43 +144,33 @@ def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
         assert ef._clean_jump(lam, h, limit) == brute(lam, h, limit)
 
 
-def test_krylov_solve_of_the_coupled_step_matches_general(monkeypatch) -> None:
-    # Force every step's collocation system through GMRES (no block-Jacobi sweep is
-    # accepted); the result must still agree with the reference integrator.
-    system = System.from_spec(_spec_with(TWO_QUBITS))
+@pytest.mark.parametrize(
+    ("problem", "tf", "setting", "value", "spied"),
+    [
+        # every step's collocation system through GMRES (no block-Jacobi sweep accepted)
+        (TWO_QUBITS, 10.0, "SLOW_ITERATION_LIMIT", 1, "_krylov_solve"),
+        # every resolved level pair may join the populations' direct solve (the
+        # strongest CORE_MAX_PAIRS of them do)
+        (THREE_QUBITS, 6.0, "CORE_COUPLING", 0.0, "_CoreBlock"),
+    ],
+    ids=["gmres", "core-block"],
+)
+def test_forced_solver_path_matches_general(monkeypatch, problem, tf, setting, value, spied):
+    # The path is taken at every step; the result must still agree with the reference.
+    system = System.from_spec(_spec_with(problem))
     f = make_schedule("beta", k_end=2)
-    ref = simulate(system, f, 10.0, integrator="general", rtol=1e-12, atol=1e-16)
+    ref = simulate(system, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
     calls = []
-    real = ef._krylov_solve
+    real = getattr(ef, spied)
 
     def counted(*args, **kwargs):
         calls.append(1)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(ef, "SLOW_ITERATION_LIMIT", 1)
-    monkeypatch.setattr(ef, "_krylov_solve", counted)
-    fast = simulate(system, f, 10.0, integrator="eigenframe")
+    monkeypatch.setattr(ef, setting, value)
+    monkeypatch.setattr(ef, spied, counted)
+    fast = simulate(system, f, tf, integrator="eigenframe")
     assert fast.integrator == "eigenframe" and len(calls) >= fast.stats["steps"]
-    assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
-
-
-def test_core_block_of_strongly_rotating_pairs_matches_general(monkeypatch) -> None:
-    # Every resolved level pair may join the populations' direct solve (the strongest
-    # CORE_MAX_PAIRS of them do); the result must still agree with the reference.
-    system = System.from_spec(_spec_with(THREE_QUBITS))
-    f = make_schedule("beta", k_end=2)
-    ref = simulate(system, f, 6.0, integrator="general", rtol=1e-12, atol=1e-16)
-    built = []
-    real = ef._CoreBlock
-
-    def counted(*args, **kwargs):
-        built.append(1)
-        return real(*args, **kwargs)
-
-    monkeypatch.setattr(ef, "CORE_COUPLING", 0.0)
-    monkeypatch.setattr(ef, "_CoreBlock", counted)
-    fast = simulate(system, f, 6.0, integrator="eigenframe")
-    assert fast.integrator == "eigenframe" and len(built) >= fast.stats["steps"]
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
 
 
