@@ -150,10 +150,12 @@ def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
         # every step's collocation system through GMRES (no block-Jacobi sweep accepted)
         (TWO_QUBITS, 10.0, "SLOW_ITERATION_LIMIT", 1, "_krylov_solve"),
         # every resolved level pair may join the populations' direct solve (the
-        # strongest CORE_MAX_PAIRS of them do)
+        # strongest CORE_MAX_PAIRS of them do), and every level pair may couple its
+        # coherences with the other levels as 2-mode blocks
         (THREE_QUBITS, 6.0, "CORE_COUPLING", 0.0, "_CoreBlock"),
+        (THREE_QUBITS, 6.0, "CORE_COUPLING", 0.0, "_PairBlocks"),
     ],
-    ids=["gmres", "core-block"],
+    ids=["gmres", "core-block", "pair-blocks"],
 )
 def test_forced_solver_path_matches_general(monkeypatch, problem, tf, setting, value, spied):
     # The path is taken at every step; the result must still agree with the reference.
@@ -174,15 +176,17 @@ def test_forced_solver_path_matches_general(monkeypatch, problem, tf, setting, v
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
 
 
-def test_core_block_solves_the_same_collocation_system(monkeypatch) -> None:
-    # One step near s = 0.5 of a 3-qubit anneal: with and without the core block the
-    # converged collocation solution is the same (the block only changes how the
-    # linear system is solved).
+@pytest.mark.parametrize(("tf", "h"), [(50.0, 0.002), (5000.0, 0.02)])
+def test_core_and_pair_blocks_solve_the_same_collocation_system(monkeypatch, tf, h) -> None:
+    # One step near s = 0.5 of a 3-qubit anneal: with and without the core block and
+    # the 2-mode pair blocks the converged collocation solution is the same (they only
+    # change how the linear system is solved).  At tf = 50 ns every coherence is
+    # resolved on this step, at 5000 ns every one takes the exponential (Levin) update.
     system = System.from_spec(_spec_with(THREE_QUBITS))
     model = ef.EigenframeModel.from_system(system)
     scheme = ef.collocation_scheme()
     f = make_schedule("beta", k_end=2)
-    x0, h, tf = 0.45, 0.02, 50.0
+    x0 = 0.45
     fd = f.derivatives(x0 + h * scheme.tau, 1)
     fr = model.frame(fd[0], None)
     d = model.dim
@@ -192,13 +196,16 @@ def test_core_block_solves_the_same_collocation_system(monkeypatch) -> None:
     c0 = (rng.normal(size=(d, d)) + 1j * rng.normal(size=(d, d))) * 1e-3
     c0 = 0.5 * (c0 + c0.conj().T)
     np.fill_diagonal(c0, 0.0)
-    levin = np.zeros((d, d), dtype=bool)
+    off = ~np.eye(d, dtype=bool)
+    levin = off & (np.min(np.abs(tf * fr.lam), axis=0) * h >= ef.LEVIN_THRESHOLD)
+    assert levin[off].mean() == (1.0 if tf > 1000.0 else 0.0)
     args = (h, p0, c0, levin, fr, fd[1], tf, scheme, 1e-12, 1e-16)
     monkeypatch.setattr(ef, "CORE_COUPLING", math.inf)
     plain = ef._slow_step(*args)
     monkeypatch.setattr(ef, "CORE_COUPLING", 0.0)
-    assert ef._core_pairs(h, fr.K[1:], fd[1][1:], ~np.eye(d, dtype=bool))[0].size > 0
+    assert ef._strong_pairs(h, fr.K[1:], fd[1][1:], off)[0].size > 0
     core = ef._slow_step(*args)
+    assert np.isfinite(plain.err) and np.isfinite(core.err)
     scale = max(np.max(np.abs(plain.P)), np.max(np.abs(plain.C)))
     assert np.max(np.abs(core.P - plain.P)) <= 1e-11 * scale
     assert np.max(np.abs(core.C - plain.C)) <= 1e-11 * scale

@@ -137,6 +137,8 @@ KRYLOV_MAXITER = 5
 CORE_COUPLING = 0.05
 #: At most this many level pairs (the most strongly coupled) join the populations.
 CORE_MAX_PAIRS = 8
+#: Solve the coherences coupled in pairs through those level pairs as 2-mode blocks.
+PAIR_BLOCKS = True
 
 
 # --------------------------------------------------------------------------
@@ -401,17 +403,145 @@ def _real_apply(op: Any, v: NDArray[np.complex128]) -> NDArray[np.complex128]:
     return out[:, 0] + 1j * out[:, 1]
 
 
+def _strong_pairs(
+    h: float, K: NDArray[np.float64], fp: NDArray[np.float64], allowed: NDArray[np.bool_]
+) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Level pairs (a < b) among ``allowed`` whose frame rotation turns by at least
+    ``CORE_COUPLING`` over the step, the ``CORE_MAX_PAIRS`` strongest first."""
+    d = K.shape[-1]
+    iu, ju = np.triu_indices(d, 1)
+    strength = h * np.max(np.abs(fp)) * np.max(np.abs(K[:, iu, ju]), axis=0)
+    chosen = np.flatnonzero(allowed[iu, ju] & (strength >= CORE_COUPLING))
+    chosen = chosen[np.argsort(strength[chosen])[::-1][:CORE_MAX_PAIRS]]
+    return iu[chosen], ju[chosen]
+
+
 def _core_pairs(
     h: float, K: NDArray[np.float64], fp: NDArray[np.float64], resolved: NDArray[np.bool_]
 ) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
     """Coherences (a, b) and (b, a) of the level pairs that join the population block."""
-    d = K.shape[-1]
-    iu, ju = np.triu_indices(d, 1)
-    strength = h * np.max(np.abs(fp)) * np.max(np.abs(K[:, iu, ju]), axis=0)
-    chosen = np.flatnonzero(resolved[iu, ju] & (strength >= CORE_COUPLING))
-    chosen = chosen[np.argsort(strength[chosen])[::-1][:CORE_MAX_PAIRS]]
-    pa, pb = iu[chosen], ju[chosen]
+    pa, pb = _strong_pairs(h, K, fp, resolved)
     return np.concatenate([pa, pb]), np.concatenate([pb, pa])
+
+
+class _PairBlocks:
+    """Coherences coupled in pairs through a fast-rotating level pair, solved jointly.
+
+    For a level pair (a, b) whose frame rotates fast, the rotation couples coherence
+    (c, a) with (c, b), and (a, c) with (b, c), for every other level c:
+    ``G_u += -k rho_v`` and ``G_v += +k rho_u`` with ``k = f' K_ab``.  When both
+    coherences are exponentially treated with little phase over the step, the Levin
+    blocks amplify that coupling and block Jacobi (and GMRES after it) converges
+    slowly; solving each such pair as one 2-mode block removes the amplification.
+    Pairs of one kind only (both Levin or both resolved); each coherence joins at most
+    one block, and not if it is in the core block.
+    """
+
+    def __init__(
+        self,
+        h: float,
+        scheme: CollocationScheme,
+        K: NDArray[np.float64],
+        fp: NDArray[np.float64],
+        lam: NDArray[np.complex128],
+        levin: NDArray[np.bool_],
+        taken: NDArray[np.bool_],
+        pairs: tuple[NDArray[np.intp], NDArray[np.intp]],
+    ) -> None:
+        d = K.shape[-1]
+        m1 = scheme.tau.size
+        used = taken.copy()
+        us: list[NDArray[np.intp]] = []
+        vs: list[NDArray[np.intp]] = []
+        ks: list[NDArray[np.float64]] = []
+        for a, b in zip(*pairs, strict=True):
+            cs = np.setdiff1d(np.arange(d), [a, b])
+            k = fp * K[:, a, b]  # (m + 1,)
+            for u, v in ((cs * d + a, cs * d + b), (a * d + cs, b * d + cs)):
+                ok = ~used.flat[u] & ~used.flat[v] & (levin.flat[u] == levin.flat[v])
+                used.flat[u[ok]] = True
+                used.flat[v[ok]] = True
+                us.append(u[ok])
+                vs.append(v[ok])
+                ks.append(np.repeat(k[None], int(ok.sum()), axis=0))
+        u = np.concatenate(us)
+        v = np.concatenate(vs)
+        k = np.concatenate(ks) if ks else np.zeros((0, m1))
+        lam_flat = lam.reshape(m1, d * d)
+        self.levin_kind = levin.flat[u]
+        self.u, self.v, self.k = u, v, k  # k: (n_blocks, m + 1)
+        self.size = u.size
+        L = self.levin_kind
+        # Levin: [[D/h - lam_u, k], [-k, D/h - lam_v]] on the m + 1 nodes
+        if L.any():
+            Dh = scheme.D / h
+            n = int(L.sum())
+            mat = np.zeros((n, 2 * m1, 2 * m1), dtype=complex)
+            kk = k[L]
+            idx = np.arange(m1)
+            mat[:, :m1, :m1] = Dh
+            mat[:, m1:, m1:] = Dh
+            mat[:, idx, idx] -= lam_flat[:, u[L]].T
+            mat[:, m1 + idx, m1 + idx] -= lam_flat[:, v[L]].T
+            mat[:, idx, m1 + idx] = kk
+            mat[:, m1 + idx, idx] = -kk
+            self.levin_inv = np.linalg.inv(mat)
+        # resolved: [[I - hA lam_u, hA k], [-hA k, I - hA lam_v]] on the Radau nodes
+        R = ~L
+        if R.any():
+            m = m1 - 1
+            hA = h * scheme.A
+            n = int(R.sum())
+            kk = k[R][:, 1:]
+            mat = np.zeros((n, 2 * m, 2 * m), dtype=complex)
+            eye = np.eye(m)
+            mat[:, :m, :m] = eye - hA[None] * lam_flat[1:, u[R]].T[:, None, :]
+            mat[:, m:, m:] = eye - hA[None] * lam_flat[1:, v[R]].T[:, None, :]
+            mat[:, :m, m:] = hA[None] * kk[:, None, :]
+            mat[:, m:, :m] = -hA[None] * kk[:, None, :]
+            self.resolved_inv = np.linalg.inv(mat)
+
+    def solve(
+        self,
+        G: NDArray[np.complex128],
+        C: NDArray[np.complex128],
+        c0: NDArray[np.complex128],
+        forced: bool,
+        h: float,
+        A: NDArray[np.float64],
+        C_new: NDArray[np.complex128],
+    ) -> None:
+        """Overwrite the block coherences of ``C_new`` with the joint solution.
+
+        ``G`` is the full coupling computed from ``C`` (whose within-block part is
+        removed here); ``c0`` the start values of resolved coherences.
+        """
+        m1 = G.shape[0]
+        n2 = G.shape[1] * G.shape[2]
+        Gf = G.reshape(m1, n2)
+        Cf = C.reshape(m1, n2)
+        out = C_new.reshape(m1, n2)
+        u, v, k = self.u, self.v, self.k
+        gu = Gf[:, u].T + k * Cf[:, v].T  # (n, m + 1) without the within-block part
+        gv = Gf[:, v].T - k * Cf[:, u].T
+        L = self.levin_kind
+        if L.any():
+            rhs = np.concatenate([gu[L], gv[L]], axis=1)[..., None]
+            sol = (self.levin_inv @ rhs)[..., 0]
+            out[:, u[L]] = sol[:, :m1].T
+            out[:, v[L]] = sol[:, m1:].T
+        R = ~L
+        if R.any():
+            m = m1 - 1
+            start_u = c0.flat[u[R]] if forced else np.zeros(int(R.sum()), dtype=complex)
+            start_v = c0.flat[v[R]] if forced else np.zeros(int(R.sum()), dtype=complex)
+            ru = start_u[:, None] + h * gu[R][:, 1:] @ A.T
+            rv = start_v[:, None] + h * gv[R][:, 1:] @ A.T
+            sol = (self.resolved_inv @ np.concatenate([ru, rv], axis=1)[..., None])[..., 0]
+            out[0, u[R]] = start_u
+            out[0, v[R]] = start_v
+            out[1:, u[R]] = sol[:, :m].T
+            out[1:, v[R]] = sol[:, m:].T
 
 
 def _slow_step(
@@ -480,6 +610,15 @@ def _slow_step(
         core = _CoreBlock(
             h, scheme.A, fr.K[1:], fp[1:], lam[1:, core_a, core_b], core_a, core_b, pop_solve
         )
+    blocks = None
+    if PAIR_BLOCKS:
+        strong = _strong_pairs(h, fr.K[1:], fp[1:], off)
+        if strong[0].size:
+            taken = np.zeros((d, d), dtype=bool)
+            taken[core_a, core_b] = True
+            blocks = _PairBlocks(h, scheme, fr.K, fp, lam, levin, taken, strong)
+            if blocks.size == 0:
+                blocks = None
     sigma_comm = fr.K * (fr.pi[:, None, :] - fr.pi[:, :, None])  # [K, diag(pi)]
     eye = np.eye(d)
 
@@ -523,6 +662,8 @@ def _slow_step(
             C_new[1:, ri, rj] = (rinv @ rhs_c[..., None])[..., 0].T
         if core is not None:
             C_new[1:, core_a, core_b] = core_c.reshape(m, core_a.size)
+        if blocks is not None:
+            blocks.solve(G, C, c0, forced, h, scheme.A, C_new)
         return P_new, C_new
 
     def size(P: NDArray[Any], C: NDArray[Any]) -> float:
