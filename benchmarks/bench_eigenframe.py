@@ -124,6 +124,8 @@ def qubit_point(n: int, tf: float = 1e3) -> None:
         f"warning: {'yes' if any('estimated error' in w for w in r.warnings) else 'no'}",
         flush=True,
     )
+    if r.status != "ok":
+        print(f"qubits  n={n} tf={tf:g}: {r.message}", flush=True)
 
 
 def _qubit_points(counts: range, tf: float, limit_s: float) -> None:
