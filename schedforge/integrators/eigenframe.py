@@ -71,7 +71,7 @@ module holds the eigenframe model, the step and the driver.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, fields, replace
 from functools import partial
 from typing import Any
 
@@ -150,6 +150,11 @@ PAIR_BLOCKS = True
 DEGENERACY_RTOL = 1e-7
 
 
+def _degeneracy_tol(E: NDArray[np.float64]) -> float:
+    """Level spacing (rad/ns) below which levels are treated as degenerate."""
+    return DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(E))))
+
+
 def _adapt_degenerate(
     E: NDArray[np.float64], V: NDArray[np.float64], dH: NDArray[np.float64], tol: float
 ) -> None:
@@ -174,6 +179,36 @@ def _adapt_degenerate(
                 start = i
 
 
+def _diabatic_states(
+    H: NDArray[np.float64],
+    dH: NDArray[np.float64],
+    E: NDArray[np.float64],
+    V: NDArray[np.float64],
+    labels: NDArray[np.intp],
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Energies and vectors with the levels ``labels`` turned into diabatic states.
+
+    Within the span of those eigenvectors, the states that diagonalise dH/ds are the
+    diabatic states of a crossing whose coupling does not change along s (the
+    Landau-Zener model); each replaces the eigenvector it overlaps most, and its
+    energy is its expectation value of H.  Returns new (E, V).
+    """
+    block = V[:, :, labels]
+    sub = np.swapaxes(block, 1, 2) @ dH @ block
+    _, rot = np.linalg.eigh(0.5 * (sub + np.swapaxes(sub, 1, 2)))
+    # rot[n, j, k]: component of diabatic state k on eigenvector j; keep label j
+    # on the diabatic state that continues it
+    pick = np.argmax(np.abs(rot), axis=2)
+    for n in range(rot.shape[0]):
+        if np.unique(pick[n]).size == labels.size:
+            rot[n] = rot[n][:, pick[n]]
+    states = block @ rot
+    E, V = E.copy(), V.copy()
+    V[:, :, labels] = states
+    E[:, labels] = np.einsum("nia,nij,nja->na", states, H, states)
+    return E, V
+
+
 @dataclass(frozen=True)
 class FrameData:
     """Eigenframe quantities at a batch of n points s (stacked along axis 0).
@@ -188,8 +223,13 @@ class FrameData:
     lam: NDArray[np.complex128]  # (n, d, d) -i omega_ab - Gamma_ab, zero diagonal
     pi: NDArray[np.float64]  # (n, d) Gibbs populations
     dpi: NDArray[np.float64]  # (n, d) d pi / ds
+    slope: NDArray[np.float64]  # (n, d) dE/ds (Hellmann-Feynman), rad/ns
     min_level_gap: NDArray[np.float64]  # (n,) smallest |E_a - E_b|, rad/ns
     min_bohr_gap: NDArray[np.float64]  # (n,) smallest gap between distinct Bohr frequencies
+
+    def last(self) -> FrameData:
+        """The data at the last point only."""
+        return FrameData(**{f.name: getattr(self, f.name)[-1:] for f in fields(self)})
 
 
 class EigenframeModel:
@@ -249,18 +289,40 @@ class EigenframeModel:
         bath = system.bath
         return cls(batch, bath.operators, bath.gamma, bath.beta)
 
-    def frame(self, s: NDArray[np.float64], reference: NDArray[np.float64] | None) -> FrameData:
+    def frame(
+        self,
+        s: NDArray[np.float64],
+        reference: NDArray[np.float64] | None,
+        order: NDArray[np.intp] | None = None,
+        diabatic: NDArray[np.intp] | None = None,
+    ) -> FrameData:
         """Eigen-decomposition and Davies data at the points ``s``.
 
         Eigenvector signs are aligned to ``reference`` (a (d, d) eigenvector matrix)
         when given, else fixed by making the largest component of each vector positive.
+        ``order`` ((d,) or (n, d)) relabels the levels: label a is the level of rank
+        ``order[a]`` in increasing energy (after a diabatic passage through a narrow
+        avoided crossing, labels follow the diabatic states, not the energy ranks).
+        The levels ``diabatic`` (labels) are replaced by the diabatic states, which
+        diagonalise dH/ds in their span, with energies the diagonal of H there (the
+        frame of a diabatic passage; their coupling in H is left out).
         """
         s = np.atleast_1d(np.asarray(s, dtype=float))
         H, dH = self.hamiltonian_batch(s)
         E, V = np.linalg.eigh(H)
         d = self.dim
-        tol = DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(E))))
+        tol = _degeneracy_tol(E)
         _adapt_degenerate(E, V, dH, tol)
+        if d > 1:
+            min_level_gap = np.min(np.abs(np.diff(E, axis=1)), axis=1)
+        else:
+            min_level_gap = np.full(s.size, math.inf)
+        if order is not None:
+            idx = np.broadcast_to(np.asarray(order), E.shape)
+            E = np.take_along_axis(E, idx, axis=1)
+            V = np.take_along_axis(V, idx[:, None, :], axis=2)
+        if diabatic is not None:
+            E, V = _diabatic_states(H, dH, E, V, diabatic)
         if reference is None:
             idx = np.argmax(np.abs(V), axis=1)  # (n, d)
             sgn = np.sign(np.take_along_axis(V, idx[:, None, :], axis=1))[:, 0, :]
@@ -277,9 +339,6 @@ class EigenframeModel:
         if d > 1:
             split = off[None] & (np.abs(dE) > tol)
             K[split] = Hp[split] / dE[split]
-            min_level_gap = np.min(np.abs(np.diff(E, axis=1)), axis=1)
-        else:
-            min_level_gap = np.full(s.size, math.inf)
         # Davies rates: W[a, b] = sum_i gamma(E_b - E_a) |A_ab|^2, rate b -> a
         g = np.asarray(self.gamma(dE.ravel())).reshape(dE.shape)
         rates = np.zeros_like(dE)
@@ -300,7 +359,7 @@ class EigenframeModel:
         lam[:, ~off] = 0.0
         # Gibbs populations and their s-derivative (Hellmann-Feynman: E_a' = Hp_aa)
         Ep = np.einsum("naa->na", Hp)
-        wts = np.exp(-self.beta * (E - E[:, :1]))
+        wts = np.exp(-self.beta * (E - np.min(E, axis=1, keepdims=True)))
         pi = wts / wts.sum(axis=1, keepdims=True)
         mean_Ep = np.sum(pi * Ep, axis=1, keepdims=True)
         dpi = -self.beta * pi * (Ep - mean_Ep)
@@ -319,9 +378,221 @@ class EigenframeModel:
             lam=lam,
             pi=pi,
             dpi=dpi,
+            slope=Ep,
             min_level_gap=min_level_gap,
             min_bohr_gap=min_bohr_gap,
         )
+
+
+# --------------------------------------------------------------------------
+# narrow avoided crossings: diabatic passage
+# --------------------------------------------------------------------------
+#: Eigenvectors at the step's nodes must overlap the previous frame by at least this
+#: much (a turn of at most 45 degrees) for the step to follow the frame.
+FRAME_OVERLAP_MIN = 0.7
+#: Below this step length a frame that still turns too far cannot be followed.
+FOLLOW_STEP_MIN = 1e-9
+
+
+@dataclass(frozen=True)
+class DiabaticPassage:
+    """Levels relabelled to follow the diabatic states through narrow avoided crossings.
+
+    ``order`` (n, d) gives, per node, the energy rank of each label; ``pairs`` are the
+    label pairs whose ranks swapped; ``gap`` (rad/ns) is the largest estimated minimum
+    gap among them and ``error`` the Landau-Zener bound on what the passage leaves out
+    (trace norm of the change of the state).
+    """
+
+    order: NDArray[np.intp]
+    pairs: tuple[tuple[int, int], ...]
+    gap: float
+    error: float
+
+    @property
+    def labels(self) -> NDArray[np.intp]:
+        """The labels that crossed, sorted."""
+        return np.unique(np.array(self.pairs, dtype=np.intp))
+
+
+def landau_zener_transition(gap: float, sweep_rate: float) -> float:
+    """Probability of the adiabatic transition at a linear avoided crossing.
+
+    Landau-Zener formula (Zener, Proc. R. Soc. A 137, 696, 1932), hbar = 1: for
+    ``H(t) = [[alpha t / 2, Delta / 2], [Delta / 2, -alpha t / 2]]`` a system that
+    starts in a diabatic state stays in it with probability
+    ``exp(-pi Delta^2 / (2 alpha))``; this returns the rest, ``1 - exp(...)``, the
+    part a diabatic passage leaves out.
+
+    Parameters
+    ----------
+    gap : float
+        Smallest gap Delta between the two levels, rad/ns.
+    sweep_rate : float
+        alpha = |d(E_a - E_b)/dt| of the diabatic energies, rad/ns^2 (1.0 is
+        returned for alpha <= 0: no passage).
+    """
+    if sweep_rate <= 0.0:
+        return 1.0
+    return float(-math.expm1(-math.pi * gap**2 / (2.0 * sweep_rate)))
+
+
+def _relabel(
+    reference: NDArray[np.float64], fr: FrameData, order: NDArray[np.intp]
+) -> tuple[NDArray[np.intp], NDArray[np.intp]] | None:
+    """Per-node labels whose eigenvectors continue those of ``reference``, or None.
+
+    ``fr`` was built with the labels ``order``.  Only the labels whose own overlap
+    dropped below ``FRAME_OVERLAP_MIN`` are matched again, each to the eigenvector it
+    overlaps most; None unless that is one to one with every overlap above the
+    threshold.  Returns the new (n, d) order and the labels matched again.
+    """
+    diag = np.abs(np.einsum("ia,nia->na", reference, fr.V))
+    lost = np.flatnonzero(np.min(diag, axis=0) < FRAME_OVERLAP_MIN)
+    if lost.size < 2:
+        return None
+    sub = np.abs(np.einsum("ia,nib->nab", reference[:, lost], fr.V[:, :, lost]))
+    pick = np.argmax(sub, axis=2)  # (n, L): which of the lost columns continues label
+    best = np.take_along_axis(sub, pick[:, :, None], axis=2)[..., 0]
+    if np.min(best) < FRAME_OVERLAP_MIN:
+        return None
+    if any(np.unique(row).size != lost.size for row in pick):
+        return None
+    new = np.tile(order, (fr.V.shape[0], 1))
+    new[:, lost] = order[lost][pick]
+    return new, lost
+
+
+def _crossing_gap(fr: FrameData, a: int, b: int) -> tuple[float, float]:
+    """Estimated smallest gap of levels a, b (rad/ns) and their smallest slope difference.
+
+    Two-level model ``[[e_a(s), g], [g, e_b(s)]]`` with e_a - e_b linear in s: where
+    the adiabatic gap is G and the frame's rotation coupling is K_ab, the smallest gap
+    is ``2 g = 2 |K_ab| G^2 / |e_a' - e_b'|``.  The estimate is capped by the smallest
+    sampled gap, which bounds the smallest gap from above.  The slope difference is
+    per unit s.
+    """
+    G = np.abs(fr.E[:, a] - fr.E[:, b])
+    dslope = np.abs(fr.slope[:, a] - fr.slope[:, b])
+    sampled = float(np.min(G))
+    coupled = (fr.K[:, a, b] != 0) & (dslope > 0)
+    model = 2.0 * np.abs(fr.K[coupled, a, b]) * G[coupled] ** 2 / dslope[coupled]
+    gap = min(sampled, float(np.max(model))) if model.size else sampled
+    return gap, float(np.min(dslope))
+
+
+def _pass_crossing(
+    model: EigenframeModel,
+    fd: NDArray[np.float64],
+    reference: NDArray[np.float64],
+    fr: FrameData,
+    order: NDArray[np.intp],
+    tf: float,
+    h: float,
+    rho_diag: NDArray[np.float64],
+) -> tuple[DiabaticPassage, FrameData, FrameData] | None:
+    """A step's frame relabelled through narrow avoided crossings, or None to follow it.
+
+    Called when the frame ``fr`` (built with labels ``order``; ``fd`` the schedule
+    values and derivatives at the nodes) turned too far from ``reference`` within the
+    step.  The crossing is passed diabatically when its estimated gap is below the
+    degeneracy tolerance (there the frame holds the diabatic states and cannot follow
+    the turn) or the step is already too short to follow it; else None, and the step
+    is shortened.  Returns the passage, the step's frame with the crossed levels as
+    diabatic states (their rotation coupling dropped: the adiabatic transition it
+    drives is what the Landau-Zener bound counts) and the relabelled eigenframe.
+    """
+    found = _relabel(reference, fr, order)
+    if found is None:
+        return None
+    new, lost = found
+    relabelled = model.frame(fd[0], reference, new)
+    if np.min(np.abs(np.einsum("ia,nia->na", reference, relabelled.V))) < FRAME_OVERLAP_MIN:
+        return None
+    passage = _diabatic_passage(relabelled, order, new, lost, fd[1], tf, rho_diag)
+    if not passage.pairs:
+        return None
+    if passage.gap > _degeneracy_tol(relabelled.E) and h >= FOLLOW_STEP_MIN:
+        return None
+    diabatic = model.frame(fd[0], reference, new, diabatic=passage.labels)
+    K = diabatic.K.copy()
+    crossed = passage.labels
+    K[:, crossed[:, None], crossed[None, :]] = 0.0
+    return passage, replace(diabatic, K=K), relabelled
+
+
+def _sudden_change(
+    before: NDArray[np.float64],
+    after: NDArray[np.float64],
+    labels: NDArray[np.intp],
+    pi: NDArray[np.float64],
+    p: NDArray[np.float64],
+    c: NDArray[np.complex128],
+    A: NDArray[np.complex128],
+) -> tuple[NDArray[np.float64], NDArray[np.complex128], NDArray[np.complex128]]:
+    """The state in the eigenvectors ``after`` of the crossed ``labels`` (sudden limit).
+
+    A diabatic passage leaves the state unchanged while the eigenvectors of the
+    crossing levels turn (beyond the swap of labels): the state is re-expressed in
+    the new vectors, ``rho' = O^T rho O`` with ``O`` the overlaps of the old and new
+    vectors of ``labels`` (identity elsewhere).  ``pi`` are the Gibbs populations the
+    deviation p is taken from; ``c`` the coherences and ``A`` the free-mode amplitudes,
+    each rotated in turn (the map is linear).  Returns the new p, c, A.
+    """
+    O = before[:, labels].T @ after[:, labels]
+    rho = c.copy()
+    rho[np.diag_indices_from(rho)] += pi + p
+    out = []
+    for m in (rho, A.copy()):
+        m[labels, :] = O.T @ m[labels, :]
+        m[:, labels] = m[:, labels] @ O
+        out.append(m)
+    rho, A_new = out
+    p_new = np.real(np.diagonal(rho) + np.diagonal(A_new)) - pi
+    np.fill_diagonal(rho, 0.0)
+    np.fill_diagonal(A_new, 0.0)
+    return p_new, rho, A_new
+
+
+def _diabatic_passage(
+    fr: FrameData,
+    order: NDArray[np.intp],
+    new: NDArray[np.intp],
+    lost: NDArray[np.intp],
+    f1: NDArray[np.float64],
+    tf: float,
+    weight: NDArray[np.float64],
+) -> DiabaticPassage:
+    """The crossings of a relabelled step and the Landau-Zener bound on their error.
+
+    ``fr`` is the frame at the step's nodes in the new labels ``new`` (the step
+    started with ``order``); ``f1`` = ds/dx at the nodes; ``weight`` the populations
+    rho_aa of the current state.  A pair of labels whose energy ranks swap crossed.
+    Passing it diabatically leaves out the adiabatic transition, of probability
+    ``P = 1 - exp(-pi Delta^2 / (2 alpha))`` (:func:`landau_zener_transition`; Delta
+    the smallest gap, alpha = |d(E_a - E_b)/dt| the diabatic sweep rate, the smallest
+    over the step), which would move populations by P and
+    create a coherence of size sqrt(P).  The coupling is left out over the step only,
+    so the transition amplitude also misses the ends of its integral, at most the
+    mixing angle ``theta = Delta / (2 |E_a - E_b|)`` at each end of the step (first
+    order, integration by parts).  The bound is
+    ``2 (sqrt(P) + theta_0 + theta_1) (rho_aa + rho_bb)`` in trace norm.
+    """
+    pairs = []
+    gap_max, error = 0.0, 0.0
+    speed = float(np.min(np.abs(f1)))
+    for i, a in enumerate(lost):
+        for b in lost[i + 1 :]:
+            if (order[a] - order[b]) * (new[-1, a] - new[-1, b]) > 0:
+                continue  # ranks kept: this pair did not cross
+            gap, dslope = _crossing_gap(fr, a, b)
+            P = landau_zener_transition(gap, dslope * speed / tf)
+            ends = np.abs(fr.E[[0, -1], a] - fr.E[[0, -1], b])
+            theta = float(np.sum(np.minimum(0.5 * gap / np.maximum(ends, 1e-300), 1.0)))
+            pairs.append((int(a), int(b)))
+            gap_max = max(gap_max, gap)
+            error += 2.0 * min(math.sqrt(P) + theta, 1.0) * float(weight[a] + weight[b])
+    return DiabaticPassage(order=new, pairs=tuple(pairs), gap=gap_max, error=error)
 
 
 # --------------------------------------------------------------------------
@@ -913,6 +1184,8 @@ def integrate_eigenframe(
     last_fd = np.array([[f0[0]], [f0[1]]])
     last_labels = None
     previous: tuple[float, float, NDArray, NDArray] | None = None  # last accepted step
+    ranks = np.arange(d)  # energy rank of each label (see DiabaticPassage)
+    crossing_err = 0.0
 
     def fail(message: str) -> dict[str, Any]:
         return {
@@ -943,11 +1216,19 @@ def integrate_eigenframe(
         fd = schedule.derivatives(xs, 1)
         if not np.all(np.isfinite(fd)):
             return fail(f"the schedule returned non-finite values near x = {x:.6g}")
-        fr = model.frame(fd[0], Vref)
+        fr = model.frame(fd[0], Vref, ranks)
         stats["frame_evals"] += xs.size
         overlaps = np.abs(np.einsum("ia,nia->na", Vref, fr.V))
-        if np.min(overlaps) < 0.7:  # the frame turned too far within the step
-            if h < 1e-9:
+        passage = None
+        if np.min(overlaps) < FRAME_OVERLAP_MIN:  # the frame turned too far within the step
+            rho_diag = np.abs(p + last_frame.pi[-1])
+            passed = _pass_crossing(model, fd, Vref, fr, ranks, tf, h, rho_diag)
+            stats["frame_evals"] += xs.size
+            if passed is not None:
+                passage, fr, adiabatic = passed
+                stats["frame_evals"] += xs.size
+        if np.min(overlaps) < FRAME_OVERLAP_MIN and passage is None:
+            if h < FOLLOW_STEP_MIN:
                 return fail(
                     f"the eigenframe is not continuous near x = {x:.6g}: degenerate levels "
                     "whose eigenvectors the Hamiltonian's derivative does not separate"
@@ -974,6 +1255,11 @@ def integrate_eigenframe(
             if not (labels >= 0).any():
                 labels = None
         p0, c0, A0 = p, c.copy(), A.copy()
+        if passage is not None:
+            # into the diabatic states at the step's start (tau[0] = 0)
+            p0, c0, A0 = _sudden_change(
+                Vref, fr.V[0], passage.labels, last_frame.pi[-1], p0, c0, A0
+            )
         guess = _predict(previous, x, h, scheme.tau, levin & ~was_levin)
         with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
             res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol, guess)
@@ -1078,8 +1364,18 @@ def integrate_eigenframe(
         stats["min_bohr_gap_ghz"] = min(
             stats["min_bohr_gap_ghz"], float(np.min(fr.min_bohr_gap[1:])) / (2 * math.pi)
         )
+        if passage is not None:
+            ranks = passage.order[-1]
+            crossing_err += passage.error
+            stats["diabatic_crossings"] = stats.get("diabatic_crossings", 0) + len(passage.pairs)
+            stats["crossing_gap_ghz"] = max(
+                stats.get("crossing_gap_ghz", 0.0), passage.gap / (2 * math.pi)
+            )
         previous = (x, h, res.P, res.C)
         p, c, A = res.P[-1].copy(), res.C[-1].copy(), A_new
+        if passage is not None:  # back from the diabatic states into the eigenframe
+            p, c, A = _sudden_change(fr.V[-1], adiabatic.V[-1], passage.labels, fr.pi[-1], p, c, A)
+            fr = adiabatic
         was_levin = levin
         last_labels = labels
         Vref = fr.V[-1]
@@ -1098,19 +1394,10 @@ def integrate_eigenframe(
         dev = dev + A + coh_d + np.diag(pop_d)
     stats["free_mode_amplitude"] = float(np.max(np.abs(A)))
     stats["free_mode_error_estimate"] = float(free_err)
+    if crossing_err > 0.0 or "diabatic_crossings" in stats:
+        stats["crossing_error_estimate"] = float(crossing_err)
     stats["mode"] = "exponential" if stats["exponential_steps"] else "resolved"
-    final = FrameData(
-        E=fr.E[-1:],
-        V=fr.V[-1:],
-        K=fr.K[-1:],
-        W=fr.W[-1:],
-        lam=fr.lam[-1:],
-        pi=fr.pi[-1:],
-        dpi=fr.dpi[-1:],
-        min_level_gap=fr.min_level_gap[-1:],
-        min_bohr_gap=fr.min_bohr_gap[-1:],
-    )
-    return {"status": "ok", "message": "", "stats": stats, "deviation": dev, "frame": final}
+    return {"status": "ok", "message": "", "stats": stats, "deviation": dev, "frame": fr.last()}
 
 
 # --------------------------------------------------------------------------
@@ -1290,6 +1577,19 @@ def eigenframe_integrator(
             f"eigenframe integrator: estimated error from free oscillations {estimate:.2g} "
             f"(absolute in trace distance) exceeds {FREE_MODE_RTOL:g} of the result; the "
             "general integrator would take too long at this tf",
+        )
+    crossing = stats.get("crossing_error_estimate", 0.0)
+    if crossing > FREE_MODE_RTOL * _trace_distance(out["deviation"]):
+        what = (
+            f"{stats['diabatic_crossings']} narrow avoided crossing(s) passed diabatically "
+            f"(gap up to {stats['crossing_gap_ghz']:.2g} GHz; Landau-Zener bound on the "
+            f"error {crossing:.2g} in trace norm, more than {FREE_MODE_RTOL:g} of the result)"
+        )
+        if phase <= FALLBACK_PHASE_LIMIT:
+            return _fallback(system, schedule, tf_ns, what, rtol, atol, stats)
+        stats["warnings"] = (
+            *stats.get("warnings", ()),
+            f"eigenframe integrator: {what}; the general integrator would take too long at this tf",
         )
     dev_eig = out["deviation"]
     V1 = out["frame"].V[0]
