@@ -1,19 +1,33 @@
-"""Progress reporting for long work (sweeps): a bar on a terminal, log lines otherwise.
+"""Progress reporting for long work: a bar on a terminal, log lines otherwise.
 
-One tiny reusable reporter, no dependency.  On a terminal it redraws a single line
-``[#######.............] 12/40 points  0.53/s  ETA 53 s``; when the stream is not a
-terminal (a log file, CI) it writes one flushed line per finished item instead, so
-nothing is lost if the run is killed; ``mode="quiet"`` silences it.
+One tiny reusable reporter for items (sweep points), no dependency.  On a terminal
+it redraws a single line ``[#######.............] 12/40 points  0.53/s  ETA 53 s``;
+when the stream is not a terminal (a log file, CI) it writes one flushed line per
+finished item instead, so nothing is lost if the run is killed; ``mode="quiet"``
+silences it.
+
+Within one long anneal (several qubits take minutes), the integrators report how far
+through the anneal they are (x = t / tf) with :func:`report_anneal_progress`; a
+caller that wants to show it installs an :class:`AnnealProgress` with
+:func:`anneal_progress`.  Without one the report costs a context-variable lookup.
 """
 
 from __future__ import annotations
 
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
 from typing import TextIO
 
-__all__ = ["ProgressReporter", "format_duration"]
+__all__ = [
+    "AnnealProgress",
+    "ProgressReporter",
+    "anneal_progress",
+    "format_duration",
+    "report_anneal_progress",
+]
 
 _MODES = ("auto", "bar", "lines", "quiet")
 
@@ -177,3 +191,102 @@ class ProgressReporter:
     def _write(self, text: str) -> None:
         self.stream.write(text)
         self.stream.flush()
+
+
+# -- progress within one anneal -------------------------------------------------------
+_ANNEAL_PROGRESS: ContextVar[Callable[[float], None] | None] = ContextVar(
+    "schedforge_anneal_progress", default=None
+)
+
+
+def report_anneal_progress(x: float) -> None:
+    """Tell the installed reporter (if any) that the anneal has reached x = t / tf."""
+    callback = _ANNEAL_PROGRESS.get()
+    if callback is not None:
+        callback(x)
+
+
+@contextmanager
+def anneal_progress(callback: Callable[[float], None] | None) -> Iterator[None]:
+    """Install ``callback`` to receive :func:`report_anneal_progress` calls in a block."""
+    token = _ANNEAL_PROGRESS.set(callback)
+    try:
+        yield
+    finally:
+        _ANNEAL_PROGRESS.reset(token)
+
+
+class AnnealProgress:
+    """Show how far one long anneal has got: ``anneal x = 0.42 (pass 1), 1 min 10 s``.
+
+    Silent for the first ``delay`` seconds (most points take less).  On a terminal it
+    redraws one line at most every ``bar_interval`` seconds; otherwise it writes a
+    line at most every ``line_interval`` seconds.  x is the fraction of the anneal
+    time integrated, not of the work: steps crowd where the spectrum changes fast, so
+    no time left is estimated.  When x falls back (an integrator checks its result
+    with a second run, or hands over to another), the pass count goes up.
+
+    Parameters
+    ----------
+    stream : text stream, optional
+        Default ``sys.stderr``.
+    mode : {"auto", "bar", "lines", "quiet"}, optional
+    clock : callable, optional
+        Monotonic clock in seconds (injectable for tests).
+    delay, bar_interval, line_interval : float, optional
+        Seconds.
+    """
+
+    def __init__(
+        self,
+        *,
+        stream: TextIO | None = None,
+        mode: str = "auto",
+        clock: Callable[[], float] = time.monotonic,
+        delay: float = 2.0,
+        bar_interval: float = 0.5,
+        line_interval: float = 30.0,
+    ) -> None:
+        if mode not in _MODES:
+            raise ValueError(f"mode must be one of {_MODES}, got {mode!r}")
+        self.stream = sys.stderr if stream is None else stream
+        if mode == "auto":
+            isatty = getattr(self.stream, "isatty", None)
+            mode = "bar" if isatty is not None and isatty() else "lines"
+        self.mode = mode
+        self._clock = clock
+        self._t0 = clock()
+        self._delay = float(delay)
+        self._interval = float(bar_interval if mode == "bar" else line_interval)
+        self._last = -float("inf")
+        self._x = 0.0
+        self.passes = 1
+        self._drawn = False
+
+    def __call__(self, x: float) -> None:
+        if x < self._x - 0.25:
+            self.passes += 1
+        self._x = float(x)
+        now = self._clock()
+        if self.mode == "quiet" or now - self._t0 < self._delay:
+            return
+        if now - self._last < self._interval:
+            return
+        self._last = now
+        text = (
+            f"anneal x = {self._x:.3f} (pass {self.passes}), "
+            f"{format_duration(now - self._t0)} so far"
+        )
+        if self.mode == "bar":
+            self.stream.write(f"\r{text}\x1b[K")
+            self._drawn = True
+        else:
+            self.stream.write(text + "\n")
+        self.stream.flush()
+
+    def finish(self) -> None:
+        """Clear the line on a terminal (the result is printed next)."""
+        if self._drawn:
+            self.stream.write("\r\x1b[K")
+            self.stream.flush()
+            self._drawn = False

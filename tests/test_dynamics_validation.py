@@ -34,7 +34,8 @@ from schedforge.dynamics import (
 )
 from schedforge.errors import InputError, SteadyStateError
 from schedforge.hamiltonian import AnnealingHamiltonian, pauli_operator
-from schedforge.schedules import LinearSchedule, Schedule
+from schedforge.progress import anneal_progress
+from schedforge.schedules import LinearSchedule, Schedule, make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import BathSpec, DeviceSpec, ProblemSpec, Spec
 from schedforge.units import GHZ_TO_RAD_PER_NS, beta_from_mk
@@ -305,3 +306,14 @@ def test_cli_simulate_bad_input(run_cli, write_spec) -> None:
     path = write_spec('version = 1\n[bath]\ncoupling = "z"\n')
     code, out, err = run_cli("simulate", str(path), "--tf-ns", "5")
     assert code == 2 and "bath.coupling" in err and "Traceback" not in err and out == ""
+
+
+def test_integrators_report_anneal_progress_up_to_the_end():
+    system = System.from_spec(load_spec("builtin:driven-qubit"))
+    schedule = make_schedule("beta", k_end=1)
+    for name in ("eigenframe", "general"):
+        seen: list[float] = []
+        with anneal_progress(seen.append):
+            simulate(system, schedule, 20.0, integrator=name)
+        assert seen and seen[-1] == pytest.approx(1.0), name
+        assert all(0.0 <= x <= 1.0 for x in seen), name

@@ -20,7 +20,13 @@ from dataclasses import replace
 import pytest
 
 from schedforge.errors import InputError
-from schedforge.progress import ProgressReporter, format_duration
+from schedforge.progress import (
+    AnnealProgress,
+    ProgressReporter,
+    anneal_progress,
+    format_duration,
+    report_anneal_progress,
+)
 from schedforge.spec_model import BathSpec, NumericsSpec, Spec, SweepSpec, WaveformSpec
 from schedforge.sweep import SweepPoint, point_key, run_point, sweep_points
 
@@ -143,6 +149,24 @@ def test_progress_bar_on_tty_and_quiet():
     rep.advance()
     rep.finish("y")
     assert quiet.getvalue() == ""
+
+
+def test_anneal_progress_waits_throttles_and_counts_passes():
+    out, clock = io.StringIO(), _Clock()
+    rep = AnnealProgress(stream=out, clock=clock, delay=2.0, line_interval=30.0)
+    with anneal_progress(rep):
+        report_anneal_progress(0.1)  # within the delay: silent
+        clock.t = 3.0
+        report_anneal_progress(0.4)
+        clock.t = 10.0
+        report_anneal_progress(0.5)  # within the interval: silent
+        clock.t = 40.0
+        report_anneal_progress(0.05)  # fell back: a second pass
+    report_anneal_progress(0.9)  # outside the block: nobody listens
+    assert out.getvalue().splitlines() == [
+        "anneal x = 0.400 (pass 1), 3 s so far",
+        "anneal x = 0.050 (pass 2), 40 s so far",
+    ]
 
 
 @pytest.mark.parametrize(

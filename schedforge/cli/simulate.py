@@ -8,6 +8,7 @@ import math
 from typing import Any
 
 from ..dynamics import SimulationResult, simulate_spec
+from ..progress import AnnealProgress, anneal_progress
 from ..spec import load_spec
 from .options import add_spec_argument, positive_float
 
@@ -54,6 +55,11 @@ def register(subparsers: Any) -> None:
         action="store_true",
         help="print one JSON object (tf_ns, k_end, trace_distance, "
         "ground_infidelity, excess_energy_ghz, status, ...)",
+    )
+    parser.add_argument(
+        "--quiet",
+        action="store_true",
+        help="no progress line while a long anneal runs (shown after 2 s on stderr)",
     )
     parser.set_defaults(handler=run)
 
@@ -104,7 +110,12 @@ def format_result(result: SimulationResult) -> str:
 def run(args: argparse.Namespace) -> int:
     """Run the command; bad input raises InputError (exit 2 via the CLI)."""
     spec = load_spec(args.spec)
-    result = simulate_spec(spec, tf_ns=args.tf_ns, k_end=args.k_end)
+    progress = AnnealProgress(mode="quiet" if args.quiet else "auto")
+    try:
+        with anneal_progress(progress):
+            result = simulate_spec(spec, tf_ns=args.tf_ns, k_end=args.k_end)
+    finally:
+        progress.finish()
     if args.json:
         print(json.dumps(_clean(result.to_dict()), indent=2, sort_keys=True))
     else:

@@ -59,6 +59,17 @@ Local errors are estimated from the spectral tail (the highest Legendre
 coefficient) of the collocation polynomials and steps are adapted to
 ``rtol * |delta| + atol``; step boundaries fall on the schedule's knots.
 
+Narrow avoided crossings (excited levels of multi-qubit problems meet with gaps
+down to 1e-10 rad/ns) turn the eigenvectors by 90 degrees over a stretch of s too
+short to follow, and below the degeneracy tolerance the frame cannot resolve the
+turn at all.  There the levels are passed diabatically, as the dynamics does when
+the gap is small: the labels follow the diabatic states, the step across the
+crossing uses them as its frame (``_diabatic_states``), and the state is
+re-expressed in the new vectors at the step's ends (the sudden limit).  What that
+leaves out is bounded with the Landau-Zener formula and the mixing angles at the
+step's ends (``_diabatic_passage``); when the bound exceeds ``FREE_MODE_RTOL`` of the
+result the point is handed over or carries a warning, as for the free modes.
+
 Where the assumptions fail (degenerate levels, coinciding Bohr frequencies,
 a Lamb shift, a closed system), the integrator hands over to the general one
 and says so in the outcome's ``stats["fallback"]``.
@@ -80,6 +91,7 @@ from numpy.typing import NDArray
 from scipy.linalg import lu_factor, lu_solve
 from scipy.sparse.linalg import LinearOperator, gmres
 
+from ..progress import report_anneal_progress
 from ..units import GHZ_TO_RAD_PER_NS
 from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme, lagrange_weights
 from .free_modes import (
@@ -1381,6 +1393,7 @@ def integrate_eigenframe(
         Vref = fr.V[-1]
         last_frame, last_fd = fr, fd
         x = next_knot if last else x + h
+        report_anneal_progress(x)
         grow = min(STEP_GROWTH_MAX, max(0.2, 0.9 * max(res.err, 1e-12) ** (-1.0 / order)))
         h = min(h * grow, h_max)
     fr, fd = last_frame, last_fd

@@ -46,6 +46,7 @@ from scipy.optimize import brentq
 from ..davies import DaviesGenerator, eigen_decomposition
 from ..dynamics import IntegrationOutcome, System, register_integrator
 from ..errors import InputError
+from ..progress import report_anneal_progress
 from ..schedules import Schedule
 
 __all__ = ["integrate_closed", "integrate_general", "segment_boundaries"]
@@ -80,13 +81,18 @@ def _run_segments(
     y = y0
     steps = 0
     nfev = 0
+
+    def tracked(x: float, y: NDArray[Any]) -> NDArray[Any]:
+        report_anneal_progress(x)
+        return rhs(x, y)
+
     for a, b in itertools.pairwise(bounds):
         if b <= a:
             continue
         with warnings.catch_warnings():
             # a failing solve (nan/inf in the state) is reported below, not as warnings
             warnings.simplefilter("ignore", RuntimeWarning)
-            sol = solve_ivp(rhs, (a, b), y, method=METHOD, rtol=rtol, atol=atol)
+            sol = solve_ivp(tracked, (a, b), y, method=METHOD, rtol=rtol, atol=atol)
         steps += max(len(sol.t) - 1, 0)
         nfev += int(sol.nfev)
         if sol.status != 0 or not np.all(np.isfinite(sol.y[:, -1])):
