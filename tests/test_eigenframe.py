@@ -393,3 +393,21 @@ def test_degenerate_problem_falls_back_to_general() -> None:
     assert "fallback" in res.integrator
     assert "degenerate" in res.stats["fallback"]
     assert res.trace_distance == pytest.approx(ref.trace_distance, rel=1e-9)
+
+
+def test_coinciding_bohr_frequencies_stop_the_run_early() -> None:
+    # two uncoupled qubits with different fields: flipping one qubit costs the same
+    # whatever the other does, so Bohr frequencies coincide all along the anneal; the
+    # run stops once the stretch passes the limit instead of finishing first
+    system = System.from_spec(_spec_with(ProblemSpec(qubits=2, h=(0.5, 0.3), J=())))
+    f = make_schedule("beta", k_end=1)
+    model = ef.EigenframeModel.from_system(system)
+    out = ef.integrate_eigenframe(
+        model, f, 3.0, degeneracy_tol=system.degeneracy_tol, degenerate_limit=0.01
+    )
+    assert out["status"] == "degenerate", out["message"]
+    assert 0.01 < out["stats"]["degenerate_length"] < 0.1
+    res = simulate(system, f, 3.0, integrator="eigenframe")
+    ref = simulate(system, f, 3.0, integrator="general")
+    assert "fallback" in res.integrator and "Bohr" in res.stats["fallback"]
+    assert res.trace_distance == pytest.approx(ref.trace_distance, rel=1e-9)

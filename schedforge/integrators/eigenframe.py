@@ -93,6 +93,7 @@ from scipy.sparse.linalg import LinearOperator, gmres
 
 from ..progress import report_anneal_progress
 from ..units import GHZ_TO_RAD_PER_NS
+from .batched import batched_inv
 from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme, lagrange_weights
 from .free_modes import (
     perturbation_ratios,
@@ -768,7 +769,7 @@ class _PairBlocks:
             mat[:, m1 + idx, m1 + idx] -= lam_flat[:, v[L]].T
             mat[:, idx, m1 + idx] = kk
             mat[:, m1 + idx, idx] = -kk
-            self.levin_inv = np.linalg.inv(mat)
+            self.levin_inv = batched_inv(mat)
         # resolved: [[I - hA lam_u, hA k], [-hA k, I - hA lam_v]] on the Radau nodes
         R = ~L
         if R.any():
@@ -782,7 +783,7 @@ class _PairBlocks:
             mat[:, m:, m:] = eye - hA[None] * lam_flat[1:, v[R]].T[:, None, :]
             mat[:, :m, m:] = hA[None] * kk[:, None, :]
             mat[:, m:, :m] = -hA[None] * kk[:, None, :]
-            self.resolved_inv = np.linalg.inv(mat)
+            self.resolved_inv = batched_inv(mat)
 
     def solve(
         self,
@@ -820,7 +821,8 @@ class _PairBlocks:
             start_v = c0.flat[v[R]] if forced else np.zeros(int(R.sum()), dtype=complex)
             ru = start_u[:, None] + h * gu[R][:, 1:] @ A.T
             rv = start_v[:, None] + h * gv[R][:, 1:] @ A.T
-            sol = (self.resolved_inv @ np.concatenate([ru, rv], axis=1)[..., None])[..., 0]
+            rhs = np.concatenate([ru, rv], axis=1)[..., None]
+            sol = (self.resolved_inv @ rhs)[..., 0]
             out[0, u[R]] = start_u
             out[0, v[R]] = start_v
             out[1:, u[R]] = sol[:, :m].T
@@ -882,11 +884,11 @@ def _slow_step(
     if li.size:
         lam_l = lam[:, li, lj].T  # (n_levin, m+1)
         lmat = scheme.D[None] / h - lam_l[:, :, None] * np.eye(m + 1)[None]
-        linv = np.linalg.inv(lmat)
+        linv = batched_inv(lmat)
     if ri.size:
         lam_r = lam[1:, ri, rj].T  # (n_resolved, m)
         rmat = np.eye(m)[None] - h * scheme.A[None] * lam_r[:, None, :]
-        rinv = np.linalg.inv(rmat)
+        rinv = batched_inv(rmat)
     core_a, core_b = _core_pairs(h, fr.K[1:], fp[1:], resolved)
     core = None
     if core_a.size:
@@ -1125,6 +1127,7 @@ def integrate_eigenframe(
     h_max: float = 0.25,
     mode: str = "auto",
     degeneracy_tol: float = 0.0,
+    degenerate_limit: float = math.inf,
     dress: bool = True,
 ) -> dict[str, Any]:
     """Integrate the deviation from the instantaneous Gibbs state over x in [0, 1].
@@ -1150,6 +1153,9 @@ def integrate_eigenframe(
     degeneracy_tol : float
         Levels or Bohr frequencies closer than this (rad/ns) count as degenerate;
         ``stats["degenerate_length"]`` sums the step lengths where that happens.
+    degenerate_limit : float
+        Stop (status ``"degenerate"``) as soon as that sum exceeds this length in x:
+        the caller hands such points over, so the rest of the run would be wasted.
     mode : {"auto", "resolved"}
         "auto" uses exponential (Levin) updates for every coherence whose phase
         turns by at least ``LEVIN_THRESHOLD`` radians over a step, and resolves
@@ -1370,6 +1376,18 @@ def integrate_eigenframe(
         degenerate = np.minimum(fr.min_level_gap[1:], fr.min_bohr_gap[1:]) <= degeneracy_tol
         if np.mean(degenerate) >= 0.5:  # most of the step, not a point it touches
             stats["degenerate_length"] += h
+            if stats["degenerate_length"] > degenerate_limit:
+                return {
+                    "status": "degenerate",
+                    "message": (
+                        f"degenerate levels or Bohr frequencies over a stretch of more than "
+                        f"{degenerate_limit:.3g} of the anneal by x = {x + h:.3g} (the Davies "
+                        "generator couples coherences there)"
+                    ),
+                    "stats": stats,
+                    "deviation": None,
+                    "frame": None,
+                }
         stats["min_level_gap_ghz"] = min(
             stats["min_level_gap_ghz"], float(np.min(fr.min_level_gap[1:])) / (2 * math.pi)
         )
@@ -1533,9 +1551,13 @@ def eigenframe_integrator(
         rtol=rtol,
         atol=atol,
         degeneracy_tol=tol,
+        degenerate_limit=DEGENERATE_LENGTH_LIMIT,
         max_steps=max_steps,
     )
     out = run()
+    if out["status"] == "degenerate":
+        stats = {**out["stats"], "integrator": "eigenframe"}
+        return _fallback(system, schedule, tf_ns, out["message"], rtol, atol, stats)
     phase = tf_ns * max(
         np.ptp(np.linalg.eigvalsh(ham.matrix(0.0))), np.ptp(np.linalg.eigvalsh(ham.matrix(1.0)))
     )
