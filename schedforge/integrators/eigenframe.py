@@ -93,7 +93,6 @@ from scipy.sparse.linalg import LinearOperator, gmres
 
 from ..progress import report_anneal_progress
 from ..units import GHZ_TO_RAD_PER_NS
-from .batched import batched_inv
 from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme, lagrange_weights
 from .free_modes import (
     perturbation_ratios,
@@ -769,7 +768,7 @@ class _PairBlocks:
             mat[:, m1 + idx, m1 + idx] -= lam_flat[:, v[L]].T
             mat[:, idx, m1 + idx] = kk
             mat[:, m1 + idx, idx] = -kk
-            self.levin_inv = batched_inv(mat)
+            self.levin_inv = np.linalg.inv(mat)
         # resolved: [[I - hA lam_u, hA k], [-hA k, I - hA lam_v]] on the Radau nodes
         R = ~L
         if R.any():
@@ -783,7 +782,7 @@ class _PairBlocks:
             mat[:, m:, m:] = eye - hA[None] * lam_flat[1:, v[R]].T[:, None, :]
             mat[:, :m, m:] = hA[None] * kk[:, None, :]
             mat[:, m:, :m] = -hA[None] * kk[:, None, :]
-            self.resolved_inv = batched_inv(mat)
+            self.resolved_inv = np.linalg.inv(mat)
 
     def solve(
         self,
@@ -884,11 +883,11 @@ def _slow_step(
     if li.size:
         lam_l = lam[:, li, lj].T  # (n_levin, m+1)
         lmat = scheme.D[None] / h - lam_l[:, :, None] * np.eye(m + 1)[None]
-        linv = batched_inv(lmat)
+        linv = np.linalg.inv(lmat)
     if ri.size:
         lam_r = lam[1:, ri, rj].T  # (n_resolved, m)
         rmat = np.eye(m)[None] - h * scheme.A[None] * lam_r[:, None, :]
-        rinv = batched_inv(rmat)
+        rinv = np.linalg.inv(rmat)
     core_a, core_b = _core_pairs(h, fr.K[1:], fp[1:], resolved)
     core = None
     if core_a.size:
