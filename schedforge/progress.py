@@ -32,6 +32,16 @@ __all__ = [
 _MODES = ("auto", "bar", "lines", "quiet")
 
 
+def _resolve_mode(mode: str, stream: TextIO) -> str:
+    """Check ``mode``; ``"auto"`` is a bar on a terminal and lines otherwise."""
+    if mode not in _MODES:
+        raise ValueError(f"mode must be one of {_MODES}, got {mode!r}")
+    if mode == "auto":
+        isatty = getattr(stream, "isatty", None)
+        return "bar" if isatty is not None and isatty() else "lines"
+    return mode
+
+
 def format_duration(seconds: float) -> str:
     """Human-readable duration, e.g. ``"42 s"``, ``"3 min 05 s"``, ``"2 h 07 min"``.
 
@@ -87,13 +97,8 @@ class ProgressReporter:
         clock: Callable[[], float] = time.monotonic,
         min_interval: float = 0.1,
     ) -> None:
-        if mode not in _MODES:
-            raise ValueError(f"mode must be one of {_MODES}, got {mode!r}")
         self.stream = sys.stderr if stream is None else stream
-        if mode == "auto":
-            isatty = getattr(self.stream, "isatty", None)
-            mode = "bar" if isatty is not None and isatty() else "lines"
-        self.mode = mode
+        self.mode = _resolve_mode(mode, self.stream)
         self.total = int(total)
         self.done = int(done)
         self.label = label
@@ -247,13 +252,8 @@ class AnnealProgress:
         bar_interval: float = 0.5,
         line_interval: float = 30.0,
     ) -> None:
-        if mode not in _MODES:
-            raise ValueError(f"mode must be one of {_MODES}, got {mode!r}")
         self.stream = sys.stderr if stream is None else stream
-        if mode == "auto":
-            isatty = getattr(self.stream, "isatty", None)
-            mode = "bar" if isatty is not None and isatty() else "lines"
-        self.mode = mode
+        self.mode = _resolve_mode(mode, self.stream)
         self._clock = clock
         self._t0 = clock()
         self._delay = float(delay)

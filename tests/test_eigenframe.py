@@ -344,34 +344,28 @@ def _smallest_gap(system: System, level: int, near: float) -> float:
     return float(minimize_scalar(gap, bracket=(near - 0.01, near, near + 0.01), tol=1e-14).fun)
 
 
-def test_narrow_crossing_is_passed_diabatically_and_matches_general() -> None:
-    # gap 3.6e-7 rad/ns, below the frame's degeneracy tolerance (1.1e-6 rad/ns here):
-    # the frame cannot follow the turn of the eigenvectors (before, the integrator
-    # failed and handed over); the passage leaves out a Landau-Zener transition of
-    # probability 3e-12.  Measured 2026-12-02: relative difference 9.7e-9, estimated
-    # gap 3.77e-7 against 3.57e-7, bound 1.1e-8 against a difference of 6.2e-10.
-    system = _crossing_system(3e-4)
+@pytest.mark.parametrize(("j", "passed"), [(3e-4, True), (1e-3, False)])
+def test_narrow_crossing_matches_general(j: float, passed: bool) -> None:
+    # j = 3e-4: gap 3.6e-7 rad/ns, below the frame's degeneracy tolerance (1.1e-6 rad/ns
+    # here): the frame cannot follow the turn of the eigenvectors (before, the
+    # integrator failed and handed over) and passes the crossing diabatically, leaving
+    # out a Landau-Zener transition of probability 3e-12.  Measured 2026-12-02:
+    # relative difference 9.7e-9, estimated gap 3.77e-7 against 3.57e-7, bound 1.1e-8
+    # against a difference of 6.2e-10.  j = 1e-3: gap 4e-6 rad/ns, followed with short
+    # steps; relative difference 1.2e-9.
+    system = _crossing_system(j)
     f = make_schedule("beta", k_end=2)
     res = simulate(system, f, 100.0, integrator="eigenframe")
     ref = simulate(system, f, 100.0, integrator="general", rtol=1e-12, atol=1e-16)
     assert res.integrator == "eigenframe"
-    assert res.stats["diabatic_crossings"] == 1
     assert _agree(res.trace_distance, ref.trace_distance)
+    if not passed:
+        assert "diabatic_crossings" not in res.stats
+        return
+    assert res.stats["diabatic_crossings"] == 1
     assert abs(res.trace_distance - ref.trace_distance) <= res.stats["crossing_error_estimate"]
     true_gap = _smallest_gap(system, 3, 0.839)
     assert 2 * math.pi * res.stats["crossing_gap_ghz"] == pytest.approx(true_gap, rel=0.1)
-
-
-def test_crossing_wider_than_the_tolerance_is_followed() -> None:
-    # gap 4e-6 rad/ns: the frame follows the turn with short steps (no passage);
-    # measured 2026-12-02: relative difference 1.2e-9
-    system = _crossing_system(1e-3)
-    f = make_schedule("beta", k_end=2)
-    res = simulate(system, f, 100.0, integrator="eigenframe")
-    ref = simulate(system, f, 100.0, integrator="general", rtol=1e-12, atol=1e-16)
-    assert res.integrator == "eigenframe"
-    assert "diabatic_crossings" not in res.stats
-    assert _agree(res.trace_distance, ref.trace_distance)
 
 
 # -- where it does not apply, it says so ----------------------------------------------
