@@ -70,9 +70,14 @@ leaves out is bounded with the Landau-Zener formula and the mixing angles at the
 step's ends (``_diabatic_passage``); when the bound exceeds ``FREE_MODE_RTOL`` of the
 result the point is handed over or carries a warning, as for the free modes.
 
-Where the assumptions fail (degenerate levels, coinciding Bohr frequencies,
-a Lamb shift, a closed system), the integrator hands over to the general one
-and says so in the outcome's ``stats["fallback"]``.
+Where Bohr frequencies coincide, the Davies generator couples the coherences that
+share them and this integrator does not; ``secular_coupling_bound`` bounds what that
+leaves out through the populations (many-qubit spectra have such coincidences among
+nearly empty excited levels, where the bound is negligible).
+
+Where the assumptions fail (degenerate levels, coinciding Bohr frequencies whose
+coupling matters, a Lamb shift, a closed system), the integrator hands over to the
+general one and says so in the outcome's ``stats["fallback"]``.
 
 The collocation nodes and matrices live in :mod:`.collocation`, the treatment of
 the free modes (ratios, clusters, rates, dressing) in :mod:`.free_modes`; this
