@@ -257,7 +257,7 @@ class AnnealProgress:
         self._clock = clock
         self._t0 = clock()
         self._delay = float(delay)
-        self._interval = float(bar_interval if mode == "bar" else line_interval)
+        self._interval = float(bar_interval if self.mode == "bar" else line_interval)
         self._last = -float("inf")
         self._x = 0.0
         self.passes = 1

@@ -169,6 +169,25 @@ def test_anneal_progress_waits_throttles_and_counts_passes():
     ]
 
 
+def test_anneal_progress_redraws_one_line_on_a_terminal():
+    class Tty(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    out, clock = Tty(), _Clock()
+    rep = AnnealProgress(stream=out, clock=clock, delay=2.0, bar_interval=0.5)
+    assert rep.mode == "bar"
+    for t, x in ((3.0, 0.2), (3.2, 0.3), (3.6, 0.4)):  # the second within the interval
+        clock.t = t
+        rep(x)
+    rep.finish()
+    assert out.getvalue() == (
+        "\ranneal x = 0.200 (pass 1), 3 s so far\x1b[K"
+        "\ranneal x = 0.400 (pass 1), 4 s so far\x1b[K"
+        "\r\x1b[K"
+    )
+
+
 @pytest.mark.parametrize(
     ("seconds", "text"),
     [(0.4, "0 s"), (59.4, "59 s"), (65, "1 min 05 s"), (7620, "2 h 07 min"), (math.inf, "?")],
