@@ -121,7 +121,7 @@ def qubit_point(n: int, tf: float = 1e3) -> None:
         f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
         f"trace distance {r.trace_distance:.12e}, free-mode error estimate "
         f"{'n/a' if est is None else f'{est:.2g}'}, "
-        f"warning: {'yes' if any('estimated error' in w for w in r.warnings) else 'no'}",
+        f"warning: {'yes' if any(w.startswith('eigenframe integrator:') for w in r.warnings) else 'no'}",
         flush=True,
     )
     if r.status != "ok":
