@@ -116,12 +116,13 @@ def qubit_point(n: int, tf: float = 1e3) -> None:
     t_pre = time.perf_counter() - t0
     r, w = _timed(simulate, system, f, tf)
     est = r.stats.get("free_mode_error_estimate")
+    warned = any(w.startswith("eigenframe integrator:") for w in r.warnings)
     print(
         f"qubits  n={n} tf={tf:g}: {w:.2f} s per point (preflight {t_pre:.2f} s of it), "
         f"integrator {r.integrator}, status {r.status}, steps {r.stats.get('steps')}, "
         f"trace distance {r.trace_distance:.12e}, free-mode error estimate "
         f"{'n/a' if est is None else f'{est:.2g}'}, "
-        f"warning: {'yes' if any(w.startswith('eigenframe integrator:') for w in r.warnings) else 'no'}",
+        f"warning: {'yes' if warned else 'no'}",
         flush=True,
     )
     if r.status != "ok":
