@@ -59,6 +59,8 @@ __all__ = [
     "GeneratorSpectrum",
     "bohr_groups",
     "eigen_decomposition",
+    "group_levels",
+    "pair_pairs",
 ]
 
 #: Levels (and Bohr frequencies) closer than this times max(1, max|E|) are merged.
@@ -196,14 +198,39 @@ def eigen_decomposition(h: NDArray[Any], tol: float | None = None) -> EigenDecom
     energies, vectors = np.linalg.eigh(h)
     if tol is None:
         tol = DEFAULT_DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(energies))))
+    labels, levels = _cluster(energies, tol)
+    return EigenDecomposition(energies, vectors, labels, levels, float(tol))
+
+
+def _cluster(
+    energies: NDArray[np.float64], tol: float
+) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
+    """Cluster labels and cluster-mean levels of ascending energies (gaps above tol split)."""
     split = np.diff(energies) > tol
     if split.all():  # no degeneracy: the common case, kept cheap
-        return EigenDecomposition(
-            energies, vectors, np.arange(energies.size, dtype=np.int64), energies, float(tol)
-        )
+        return np.arange(energies.size, dtype=np.int64), energies
     labels = np.concatenate(([0], np.cumsum(split))).astype(np.int64)
     means = np.bincount(labels, weights=energies) / np.bincount(labels)
-    return EigenDecomposition(energies, vectors, labels, means[labels], float(tol))
+    return labels, means[labels]
+
+
+def group_levels(energies: NDArray[np.float64], tol: float) -> NDArray[np.float64]:
+    """Each energy replaced by the mean of its cluster of (nearly) degenerate levels.
+
+    ``energies`` may come in any order (a frame's labels need not follow the energy
+    ranks); levels whose sorted neighbours lie within ``tol`` form one cluster.
+    """
+    order = np.argsort(energies, kind="stable")
+    _, levels = _cluster(energies[order], tol)
+    out = np.empty_like(levels)
+    out[order] = levels
+    return out
+
+
+def pair_pairs(gid: NDArray[np.int64]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """All ordered pairs (p, q) of flat indices of ``gid`` with the same group label."""
+    p, q, _ = _pair_pairs(gid, gid.size)
+    return p, q
 
 
 def bohr_groups(

@@ -86,6 +86,7 @@ module holds the eigenframe model, the step and the driver.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass, fields, replace
 from functools import partial
@@ -106,6 +107,7 @@ from .free_modes import (
     transient_dressing,
     transient_rates,
 )
+from .sectors import propagate_sector_modes, rotation_superoperator, sector_coupling
 
 __all__ = [
     "EigenframeModel",
@@ -194,6 +196,76 @@ def _adapt_degenerate(
                     _, rot = np.linalg.eigh(0.5 * (sub + sub.T))
                     V[n][:, start:i] = block @ rot
                 start = i
+
+
+def _degenerate_clusters(E: NDArray[np.float64], tol: float) -> list[tuple[int, NDArray[np.intp]]]:
+    """Groups of labels whose levels lie within ``tol`` of each other, per point.
+
+    Returns (point index, labels) for every group of two or more levels.
+    """
+    out = []
+    for n in range(E.shape[0]):
+        order = np.argsort(E[n], kind="stable")
+        gaps = np.diff(E[n][order]) > tol
+        if gaps.all():
+            continue
+        starts = np.concatenate(([0], np.flatnonzero(gaps) + 1, [E.shape[1]]))
+        for a, b in itertools.pairwise(starts):
+            if b - a > 1:
+                out.append((n, np.sort(order[a:b])))
+    return out
+
+
+def _transported(Vc: NDArray[np.float64], Q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The orthonormal basis of span(Vc) closest to ``Q``: ``P Q (Q^T P Q)^(-1/2)``.
+
+    For levels that stay degenerate, the eigenvectors inside their eigenspace are
+    arbitrary; this choice (Loewdin's symmetric orthonormalisation of the projected
+    reference) turns as little as possible from the reference, so the frame is
+    continuous, and its rotation inside the eigenspace is known exactly
+    (:func:`_transport_rotation`).
+    """
+    u, _, vt = np.linalg.svd(Vc.T @ Q)
+    return Vc @ (u @ vt)
+
+
+def _transport_rotation(
+    E: NDArray[np.float64],
+    V: NDArray[np.float64],
+    Hp: NDArray[np.float64],
+    members: NDArray[np.intp],
+    Q: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """``V_c^T dV_c/ds`` inside degenerate levels for the frame of :func:`_transported`.
+
+    With P the projector on the eigenspace, ``V_c = P Q M^(-1/2)`` and ``M = Q^T P Q``:
+    ``V_c^T V_c' = M^(-1/2) N M^(-1/2) + M^(1/2) (M^(-1/2))'`` with
+    ``N = Q^T P P' Q = sum_(a in c, e not in c) (Q^T v_a) H'_ae (v_e^T Q) / (E_a - E_e)``
+    (first-order perturbation of the spectral projector, Kato 1966) and
+    ``M' = N + N^T``; the derivative of ``M^(-1/2)`` by the Daleckii-Krein formula.
+    ``Hp`` is dH/ds in the frame ``V`` (columns already transported).
+    """
+    d = E.size
+    rest = np.setdiff1d(np.arange(d), members)
+    B = V[:, members].T @ Q  # (k, k)
+    if rest.size:
+        denom = E[members][:, None] - E[rest][None, :]
+        N = B.T @ (Hp[np.ix_(members, rest)] / denom) @ (V[:, rest].T @ Q)
+    else:
+        N = np.zeros_like(B)
+    mu, U = np.linalg.eigh(B.T @ B)
+    mu = np.maximum(mu, 1e-300)
+    r = mu**-0.5
+    diff = mu[:, None] - mu[None, :]
+    same = np.abs(diff) <= 1e-14 * mu.max()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dd = np.where(same, -0.5 * mu[:, None] ** -1.5, (r[:, None] - r[None, :]) / diff)
+    Mp = N + N.T
+    inv_sqrt = (U * r) @ U.T
+    sqrt = (U * mu**0.5) @ U.T
+    d_inv_sqrt = U @ (dd * (U.T @ Mp @ U)) @ U.T
+    K = inv_sqrt @ N @ inv_sqrt + sqrt @ d_inv_sqrt
+    return 0.5 * (K - K.T)
 
 
 def _diabatic_states(
@@ -340,6 +412,9 @@ class EigenframeModel:
             V = np.take_along_axis(V, idx[:, None, :], axis=2)
         if diabatic is not None:
             E, V = _diabatic_states(H, dH, E, V, diabatic)
+        clusters = _degenerate_clusters(E, tol) if reference is not None else []
+        for n, members in clusters:  # parallel transport inside degenerate levels
+            V[n][:, members] = _transported(V[n][:, members], reference[:, members])
         if reference is None:
             idx = np.argmax(np.abs(V), axis=1)  # (n, d)
             sgn = np.sign(np.take_along_axis(V, idx[:, None, :], axis=1))[:, 0, :]
@@ -356,6 +431,10 @@ class EigenframeModel:
         if d > 1:
             split = off[None] & (np.abs(dE) > tol)
             K[split] = Hp[split] / dE[split]
+        for n, members in clusters:
+            K[n][np.ix_(members, members)] = _transport_rotation(
+                E[n], V[n], Hp[n], members, reference[:, members]
+            )
         # Davies rates: W[a, b] = sum_i gamma(E_b - E_a) |A_ab|^2, rate b -> a
         g = np.asarray(self.gamma(dE.ravel())).reshape(dE.shape)
         rates = np.zeros_like(dE)
@@ -845,6 +924,7 @@ def _slow_step(
     rtol: float,
     atol: float,
     guess: tuple[NDArray[Any], NDArray[Any]] | None = None,
+    sector: list[Any] | None = None,
 ) -> _SlowStep:
     """Collocation for populations and coherences over one step.
 
@@ -854,7 +934,9 @@ def _slow_step(
     nodes) and ``c0`` is not used.  ``fr`` holds frame data at the nodes
     ``x0 + h tau``, ``fp`` is f' there.  ``guess`` gives starting values (P, C)
     at the m + 1 nodes (a prediction from the previous step), else the start value
-    is held constant.
+    is held constant.  ``sector`` (one sparse matrix or None per node, from
+    :func:`.sectors.sector_coupling`) adds the Davies terms between elements of one
+    Bohr sector (coinciding Bohr frequencies, degenerate levels) to the coupling.
 
     The collocation equations are linear.  Each population and coherence block is
     solved exactly for a given frame-rotation coupling (block Jacobi); when that
@@ -921,6 +1003,8 @@ def _slow_step(
         """
         rho = C + P[:, :, None] * eye[None]
         G = -fp[:, None, None] * _commutator(fr.K, rho)
+        if sector is not None:
+            G = G + tf * _apply_sector(sector, rho)
         if forced:
             G = G - fp[:, None, None] * sigma_comm
         Gp = np.einsum("naa->na", G)
@@ -989,6 +1073,17 @@ def _slow_step(
     )
     scale = atol + rtol * max(np.max(np.abs(P[-1])), np.max(np.abs(C[-1])))
     return _SlowStep(P=P, C=C, err=float(tail / scale), iterations=iterations)
+
+
+def _apply_sector(sector: list[Any], rho: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    """The sector couplings at each node applied to rho at that node (stacked)."""
+    n, d = rho.shape[0], rho.shape[1]
+    out = np.zeros((n, d * d), dtype=complex)
+    flat = rho.reshape(n, d * d)
+    for j, S in enumerate(sector):
+        if S is not None:
+            out[j] = S @ flat[j]
+    return out.reshape(rho.shape)
 
 
 def _commutator(K: NDArray[np.float64], rho: NDArray[np.complex128]) -> NDArray[np.complex128]:
@@ -1080,46 +1175,67 @@ def _predict(
     return P, C
 
 
-def secular_coupling_bound(
-    model: EigenframeModel,
-    E: NDArray[np.float64],
-    V: NDArray[np.float64],
-    rho_diag: NDArray[np.float64],
-    tol: float,
-) -> float:
-    """Bound (rad/ns, trace norm) on the Davies terms between coherences of equal frequency.
+def _sector_couplings(model: EigenframeModel, fr: FrameData, tol: float) -> list[Any] | None:
+    """The Bohr-sector couplings at the step's nodes, or None where there are none.
 
-    Where two Bohr frequencies coincide (within ``tol``), the secular Davies generator
-    moves coherence (c, d) into (a, b) at the rate ``sum_i gamma(E_c - E_a) A_ac
-    conj(A_bd)`` (the jump term ``A_w rho A_w^dagger``; Davies, Commun. Math. Phys. 39,
-    91, 1974; ``A = V^T op V``), which the eigenframe integrator leaves out.  With
-    ``|rho_cd| <= sqrt(rho_cc rho_dd)`` (a state is positive) the left-out terms change
-    the state at most at ``sum |rate| sqrt(rho_cc rho_dd)``, both directions of every
-    coinciding pair, each coherence and its conjugate counted.  ``rho_diag`` are the
-    populations of the state in the eigenbasis ``V`` (columns) with energies ``E``.
+    Only where some node has coinciding Bohr frequencies or degenerate levels
+    (within ``tol``); elsewhere the eigenframe's rates are the whole generator.
     """
-    d = E.size
-    a, b = np.nonzero(~np.eye(d, dtype=bool))
-    omega = E[a] - E[b]
-    order = np.argsort(omega)
-    close = np.flatnonzero(np.diff(omega[order]) <= tol)
-    if close.size == 0:
+    tol = max(tol, _degeneracy_tol(fr.E))
+    if not np.any((fr.min_bohr_gap <= tol) | (fr.min_level_gap <= tol)):
+        return None
+    out = [
+        sector_coupling(fr.E[n], fr.V[n], model.operators, model.gamma, tol)
+        for n in range(fr.E.shape[0])
+    ]
+    return None if all(S is None for S in out) else out
+
+
+def _resonant_coupling(
+    sector: list[Any], fr: FrameData, fp: NDArray[np.float64], tf: float
+) -> list[Any]:
+    """Per node, the couplings between free modes that do not oscillate (per unit x).
+
+    ``tf`` times the sector coupling, plus the frame's rotation ``-f' [K, .]`` inside
+    degenerate levels (the transported frame turns there, and the modes it couples
+    share their frequency exactly).
+    """
+    tol = _degeneracy_tol(fr.E)
+    out = []
+    for j, S in enumerate(sector):
+        E = fr.E[j]
+        inside = (np.abs(E[:, None] - E[None, :]) <= tol) & ~np.eye(E.size, dtype=bool)
+        C = None if S is None else tf * S
+        if inside.any():
+            R = fp[j] * rotation_superoperator(np.where(inside, fr.K[j], 0.0))
+            C = R if C is None else C + R
+        out.append(C)
+    return out
+
+
+def _sector_leak(
+    sector: list[Any],
+    A: NDArray[np.complex128],
+    free: NDArray[np.bool_],
+    tf: float,
+    h: float,
+    weights: NDArray[np.float64],
+) -> float:
+    """What free modes feed, through their sector, into elements that are not free.
+
+    Those elements (populations, resolved coherences) take the free modes' forcing
+    in neither their collocation nor the modes' own propagation; bounded over the
+    step by ``h tf sum_j w_j |S_j| |A|``, at most the amplitude itself.
+    """
+    d = A.shape[0]
+    amp = np.abs(A.ravel()) * free.ravel()
+    if not amp.any():
         return 0.0
-    i, j = order[close], order[close + 1]
-    a1, b1, a2, b2 = a[i], b[i], a[j], b[j]
-    rate_in = np.zeros(close.size, dtype=complex)  # into (a1, b1) from (a2, b2)
-    rate_out = np.zeros(close.size, dtype=complex)  # into (a2, b2) from (a1, b1)
-    g_in = np.asarray(model.gamma(E[a2] - E[a1]))
-    g_out = np.asarray(model.gamma(E[a1] - E[a2]))
-    for op in model.operators:
-        A = V.T @ op @ V
-        rate_in += g_in * A[a1, a2] * np.conj(A[b1, b2])
-        rate_out += g_out * A[a2, a1] * np.conj(A[b2, b1])
-    rho = np.maximum(rho_diag, 0.0)
-    return float(
-        np.sum(np.abs(rate_in) * np.sqrt(rho[a2] * rho[b2]))
-        + np.sum(np.abs(rate_out) * np.sqrt(rho[a1] * rho[b1]))
-    )
+    fed = np.zeros(d * d)
+    for j, S in enumerate(sector):
+        if S is not None:
+            fed += (h * tf * weights[j]) * (abs(S).T @ (~free.ravel()).astype(float))
+    return float(np.sum(np.minimum(fed, 1.0) * amp))
 
 
 def _slowest_relaxation(W: NDArray[np.float64], pi: NDArray[np.float64]) -> float:
@@ -1173,7 +1289,6 @@ def integrate_eigenframe(
     h_max: float = 0.25,
     mode: str = "auto",
     degeneracy_tol: float = 0.0,
-    degenerate_limit: float = math.inf,
     dress: bool = True,
 ) -> dict[str, Any]:
     """Integrate the deviation from the instantaneous Gibbs state over x in [0, 1].
@@ -1197,11 +1312,10 @@ def integrate_eigenframe(
         measures the size of the dressing, which the registered integrator uses to
         check its error estimate.
     degeneracy_tol : float
-        Levels or Bohr frequencies closer than this (rad/ns) count as degenerate;
-        ``stats["degenerate_length"]`` sums the step lengths where that happens.
-    degenerate_limit : float
-        Stop (status ``"degenerate"``) as soon as that sum exceeds this length in x:
-        the caller hands such points over, so the rest of the run would be wasted.
+        Bohr frequencies (and levels) closer than this (rad/ns) form one sector of
+        the Davies generator, whose couplings the steps include
+        (:func:`.sectors.sector_coupling`); at least the frame's own degeneracy
+        tolerance.
     mode : {"auto", "resolved"}
         "auto" uses exponential (Levin) updates for every coherence whose phase
         turns by at least ``LEVIN_THRESHOLD`` radians over a step, and resolves
@@ -1237,7 +1351,6 @@ def integrate_eigenframe(
         "exponential_steps": 0,
         "min_level_gap_ghz": math.inf,
         "min_bohr_gap_ghz": math.inf,
-        "degenerate_length": 0.0,
     }
     h = 1e-3
     x = 0.0
@@ -1250,7 +1363,7 @@ def integrate_eigenframe(
     previous: tuple[float, float, NDArray, NDArray] | None = None  # last accepted step
     ranks = np.arange(d)  # energy rank of each label (see DiabaticPassage)
     crossing_err = 0.0
-    secular_err = 0.0
+    sector_tol = degeneracy_tol
 
     def fail(message: str) -> dict[str, Any]:
         return {
@@ -1303,6 +1416,9 @@ def integrate_eigenframe(
             stats["rejected"] += 1
             stats["rejected_rotation"] = stats.get("rejected_rotation", 0) + 1
             continue
+        sector = _sector_couplings(model, fr, sector_tol)
+        if sector is not None:
+            stats["sector_steps"] = stats.get("sector_steps", 0) + 1
         lam_nodes = tf * fr.lam
         levin = np.zeros((d, d), dtype=bool)
         if allow_levin:
@@ -1327,7 +1443,9 @@ def integrate_eigenframe(
             )
         guess = _predict(previous, x, h, scheme.tau, levin & ~was_levin)
         with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
-            res = _slow_step(h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol, guess)
+            res = _slow_step(
+                h, p0, c0, levin, fr, fd[1], tf, scheme, rtol, atol, guess, sector
+            )
         if entering.any() and not dressed:
             A_new = A0 + np.where(entering, c0 - res.C[0], 0.0)
         elif entering.any():
@@ -1340,7 +1458,18 @@ def integrate_eigenframe(
                     A_try, fr.K[0], fd[1][0], lam_nodes[0], tf * fr.W[0], labels
                 )
                 res = _slow_step(
-                    h, p0 - pop_d, c0, levin, fr, fd[1], tf, scheme, rtol, atol, (res.P, res.C)
+                    h,
+                    p0 - pop_d,
+                    c0,
+                    levin,
+                    fr,
+                    fd[1],
+                    tf,
+                    scheme,
+                    rtol,
+                    atol,
+                    (res.P, res.C),
+                    sector,
                 )
             A_new = A0 + np.where(entering, c0 - res.C[0] - coh_d, 0.0)
             p0 = p0 - pop_d
@@ -1394,6 +1523,18 @@ def integrate_eigenframe(
                 if skipped.any():
                     undressed = max(undressed, float(np.max(np.abs(A_single[skipped]))))
                 stats["clustered_steps"] = stats.get("clustered_steps", 0) + 1
+            if sector is not None and amp > negligible:
+                # modes of one Bohr sector feed each other without oscillation: together
+                A_sec, in_sector = propagate_sector_modes(
+                    np.where(free, A_start, 0.0),
+                    free,
+                    rate,
+                    _resonant_coupling(sector, fr, fd[1], tf),
+                    h,
+                    scheme.w,
+                )
+                A_single = np.where(in_sector, A_sec, A_single)
+                undressed += _sector_leak(sector, A_start, free, tf, h, scheme.w)
             A_new = A_single
             # a-posteriori estimate of what the treatment of the free modes leaves out:
             # terms of relative size eps_ab^2 (dressed; eps_ab the perturbation ratio of
@@ -1423,29 +1564,6 @@ def integrate_eigenframe(
         # coinciding Bohr frequencies: the Davies generator couples those coherences,
         # the eigenframe keeps them apart; the step counts as degenerate only where
         # that coupling, bounded through the populations, is not negligible
-        level_deg = fr.min_level_gap[1:] <= degeneracy_tol
-        bohr_deg = fr.min_bohr_gap[1:] <= degeneracy_tol
-        left_out = 0.0
-        if np.mean(bohr_deg) >= 0.5:
-            node = 1 + int(np.argmax(bohr_deg))
-            rho_node = np.abs(res.P[node] + fr.pi[node])
-            rate = secular_coupling_bound(model, fr.E[node], fr.V[node], rho_node, degeneracy_tol)
-            left_out = tf * h * rate
-            secular_err += left_out
-        if np.mean(level_deg) >= 0.5 or left_out > atol:  # most of the step, not a point
-            stats["degenerate_length"] += h
-            if stats["degenerate_length"] > degenerate_limit:
-                return {
-                    "status": "degenerate",
-                    "message": (
-                        f"degenerate levels or Bohr frequencies over a stretch of more than "
-                        f"{degenerate_limit:.3g} of the anneal by x = {x + h:.3g} (the Davies "
-                        "generator couples coherences there)"
-                    ),
-                    "stats": stats,
-                    "deviation": None,
-                    "frame": None,
-                }
         stats["min_level_gap_ghz"] = min(
             stats["min_level_gap_ghz"], float(np.min(fr.min_level_gap[1:])) / (2 * math.pi)
         )
@@ -1485,8 +1603,6 @@ def integrate_eigenframe(
     stats["free_mode_error_estimate"] = float(free_err)
     if crossing_err > 0.0 or "diabatic_crossings" in stats:
         stats["crossing_error_estimate"] = float(crossing_err)
-    if secular_err > 0.0:
-        stats["secular_error_estimate"] = float(secular_err)
     stats["mode"] = "exponential" if stats["exponential_steps"] else "resolved"
     return {"status": "ok", "message": "", "stats": stats, "deviation": dev, "frame": fr.last()}
 
@@ -1499,8 +1615,6 @@ def integrate_eigenframe(
 FALLBACK_PHASE_LIMIT = 2.0e4
 #: Largest phase (rad) for which resolved eigenframe steps replace failed exponential ones.
 RESOLVED_PHASE_LIMIT = 1.0e4
-#: Fallback when levels or Bohr frequencies coincide over more than this length in x.
-DEGENERATE_LENGTH_LIMIT = 1.0e-2
 #: Largest accepted estimate of the neglected free-oscillation terms, relative to
 #: the trace distance.  In calibration on the driven qubit (tf 30..180 ns, k_end 0..4,
 #: against resolved runs) the estimate exceeded the true error by 2.4x or more, so this
@@ -1611,13 +1725,9 @@ def eigenframe_integrator(
         rtol=rtol,
         atol=atol,
         degeneracy_tol=tol,
-        degenerate_limit=DEGENERATE_LENGTH_LIMIT,
         max_steps=max_steps,
     )
     out = run()
-    if out["status"] == "degenerate":
-        stats = {**out["stats"], "integrator": "eigenframe"}
-        return _fallback(system, schedule, tf_ns, out["message"], rtol, atol, stats)
     phase = tf_ns * max(
         np.ptp(np.linalg.eigvalsh(ham.matrix(0.0))), np.ptp(np.linalg.eigvalsh(ham.matrix(1.0)))
     )
@@ -1644,18 +1754,6 @@ def eigenframe_integrator(
     stats["integrator"] = "eigenframe"
     if out["status"] != "ok":
         return _fallback(system, schedule, tf_ns, out["message"], rtol, atol, stats)
-    if stats.get("degenerate_length", 0.0) > DEGENERATE_LENGTH_LIMIT:
-        return _fallback(
-            system,
-            schedule,
-            tf_ns,
-            f"degenerate levels or Bohr frequencies over a stretch of "
-            f"{stats['degenerate_length']:.3g} of the anneal (the Davies generator couples "
-            "coherences there)",
-            rtol,
-            atol,
-            stats,
-        )
     if _needs_resolving(out):
         estimate = stats.get("free_mode_error_estimate", 0.0)
         if phase <= FALLBACK_PHASE_LIMIT:
@@ -1675,18 +1773,12 @@ def eigenframe_integrator(
         )
     limit = FREE_MODE_RTOL * _trace_distance(out["deviation"])
     crossing = stats.get("crossing_error_estimate", 0.0)
-    secular = stats.get("secular_error_estimate", 0.0)
     for bound, what in (
         (
             crossing,
             f"{stats.get('diabatic_crossings', 0)} narrow avoided crossing(s) passed "
             f"diabatically (gap up to {stats.get('crossing_gap_ghz', 0.0):.2g} GHz; "
             f"Landau-Zener bound on the error {crossing:.2g} in trace norm",
-        ),
-        (
-            secular,
-            "coherences of coinciding Bohr frequencies kept apart (bound on the Davies "
-            f"terms left out {secular:.2g} in trace norm",
         ),
     ):
         if bound <= limit:

@@ -54,6 +54,8 @@ __all__ = [
 RESONANCE_RATIO = 1.0e-4
 #: Largest threshold tried when clusters at ``RESONANCE_RATIO`` are too large.
 RESONANCE_RATIO_MAX = 1.0e-1
+#: Denominators below this fraction of the largest rate count as exact resonances.
+RESONANT_RTOL = 1e-12
 #: Largest cluster of free modes propagated jointly.
 CLUSTER_MAX_SIZE = 24
 #: Clusters up to this size are exponentiated by scaling and squaring, larger ones
@@ -113,12 +115,28 @@ def coupling_ratios(
     afp = np.abs(fp)[:, None, None, None]
     den1 = lam[:, None, :, :] - lam[:, :, None, :]  # [n, a, c, b] = lam_cb - lam_ab
     den2 = lam[:, :, None, :] - lam[:, :, :, None]  # [n, a, b, c] = lam_ac - lam_ab
+    # exactly resonant partners (degenerate levels) are propagated with their mode
+    mask1 = mask1 & ~np.any(_resonant(den1, lam), axis=0)
+    mask2 = mask2 & ~np.any(_resonant(den2, lam), axis=0)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio1 = np.where(mask1, afp * np.abs(K)[:, :, :, None] / np.abs(den1), 0.0)
         ratio2 = np.where(mask2, afp * np.abs(K)[:, None, :, :] / np.abs(den2), 0.0)
     ratio1 = np.nan_to_num(ratio1, nan=np.inf)
     ratio2 = np.nan_to_num(ratio2, nan=np.inf)
     return mask1, den1, ratio1, mask2, den2, ratio2
+
+
+def _resonant(den: NDArray[np.complex128], lam: NDArray[np.complex128]) -> NDArray[np.bool_]:
+    """Denominators that vanish to rounding: partners in resonance with the mode.
+
+    Levels inside one degenerate eigenspace give coherences of exactly equal rates;
+    their coupling is no perturbation, and the eigenframe propagates such modes
+    together (:func:`schedforge.integrators.sectors.propagate_sector_modes`).
+    """
+    scale = np.max(np.abs(lam), axis=(-2, -1), keepdims=True)
+    while scale.ndim < den.ndim:
+        scale = scale[..., None]
+    return np.abs(den) <= RESONANT_RTOL * np.maximum(scale, 1e-300)
 
 
 def perturbation_ratios(
@@ -407,12 +425,13 @@ def transient_dressing(
     mask1[:, idx, idx] = False
     intra1, intra2 = intra_cluster(labels, d)
     num1 = A[:, None, :] * K.T[:, :, None]  # [a, c, b]: A_ab K_ca
+    den2 = lam[:, None, :] - lam[:, :, None]  # [a, b, c]
     mask1 = mask1 & ~intra1
+    mask2 = mask1.transpose(0, 2, 1) & ~intra2 & ~_resonant(den2, lam)
+    mask1 = mask1 & ~_resonant(den1, lam)
     with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
         t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
     # T2[a, c] = -sum_b A_ab fp K_bc / (lam_ac - lam_ab), c not in {a, b}
-    den2 = lam[:, None, :] - lam[:, :, None]  # [a, b, c]
-    mask2 = mask1.transpose(0, 2, 1) & ~intra2
     num2 = A[:, :, None] * K[None, :, :]  # [a, b, c]: A_ab K_bc
     with np.errstate(divide="ignore", invalid="ignore"):
         t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)

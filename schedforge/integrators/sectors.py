@@ -1,0 +1,176 @@
+"""Bohr-frequency sectors: the Davies terms that couple distinct elements of rho.
+
+In the instantaneous eigenbasis the Davies generator is block diagonal: an element
+rho_ab only talks to elements rho_cd of the same (grouped) Bohr frequency
+E_a - E_b = E_c - E_d (Davies, Commun. Math. Phys. 39, 91, 1974; Albash, Boixo,
+Lidar and Zanardi, New J. Phys. 14, 123016, 2012).  When all levels and Bohr
+frequencies are distinct, the only block with more than one element is that of the
+populations (the Pauli rate matrix) and every coherence decays on its own; the
+eigenframe integrator carries those two parts as ``W`` and ``lam``.
+
+On the problems users write first (chains, rings, stars, uniform couplings, zero
+fields) Bohr frequencies coincide over whole stretches of the anneal: flipping spin
+i costs an energy that depends only on i's field and neighbours.  Then the jump
+terms ``L rho L^+`` move coherence (c, d) into (a, b), and the anticommutator
+``{L^+ L, rho}`` mixes coherences inside degenerate levels with each other and
+with the populations.  :func:`sector_coupling` returns exactly those terms (the
+whole generator minus its diagonal and minus the population-to-population rates),
+as a sparse matrix on the row-major vector of rho, so the eigenframe step can add
+them to its coupling; :func:`propagate_sector_modes` propagates the free
+oscillations of one sector together, with the exponential of the sector's block.
+
+The grouping tolerance decides which frequencies count as equal: the secular
+approximation behind the Davies generator is valid when distinct Bohr frequencies
+are far apart compared with the relaxation rates, and frequencies closer than the
+rates must be grouped (see :func:`schedforge.davies.secular_tolerance`).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import sparse
+from scipy.linalg import expm
+from scipy.sparse import csgraph
+
+from ..davies import bohr_groups, group_levels, pair_pairs
+
+__all__ = ["propagate_sector_modes", "rotation_superoperator", "sector_coupling"]
+
+
+def sector_coupling(
+    E: NDArray[np.float64],
+    V: NDArray[Any],
+    operators: list[NDArray[Any]],
+    gamma: Any,
+    tol: float,
+) -> sparse.csr_matrix | None:
+    """The Davies terms between distinct elements of one Bohr sector, at one point s.
+
+    Parameters
+    ----------
+    E : ndarray (d,)
+        Energies (rad/ns) of the frame's levels, in the frame's label order.
+    V : ndarray (d, d)
+        The frame's eigenvectors (columns).
+    operators : list of ndarray
+        Hermitian system-bath coupling operators (computational basis).
+    gamma : callable
+        Spectral density ``gamma(omega)`` (rad/ns), vectorised;
+        ``omega[a, b] = E_b - E_a`` is the energy given to the bath by b -> a.
+    tol : float
+        Levels and Bohr frequencies closer than this (rad/ns) are grouped.
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix (d^2, d^2) or None
+        ``S`` with ``(S vec(rho))[a d + b]`` the rate (rad/ns) at which the other
+        elements of rho's sector feed rho_ab (row-major ``vec``); the diagonal and
+        the population-to-population entries (already in the Pauli rates) are left
+        out.  None when no two elements share a sector (distinct levels and Bohr
+        frequencies), the case the eigenframe handles without it.
+    """
+    d = E.size
+    levels = group_levels(E, tol)
+    omega, gid, _ = bohr_groups(levels, tol)
+    sizes = np.bincount(gid.ravel())
+    zero_group = gid[0, 0]
+    others = np.delete(sizes, zero_group)
+    if sizes[zero_group] == d and (others.size == 0 or others.max() == 1):
+        return None
+    g = np.asarray(gamma(omega), dtype=float)
+    sqrt_g = np.sqrt(np.maximum(g, 0.0)).ravel()
+    ops = np.stack([V.conj().T @ op @ V for op in operators]).reshape(len(operators), d * d)
+    p, q = pair_pairs(gid)
+    weight = sqrt_g[p] * sqrt_g[q] * np.einsum("ij,ij->j", ops[:, p], ops[:, q].conj())
+    ap, bp, aq, bq = p // d, p % d, q // d, q % d
+    # jump terms: rho_(bp, bq) -> rho_(ap, aq)
+    rows = [ap * d + aq]
+    cols = [bp * d + bq]
+    vals = [weight]
+    # anticommutator -(K rho + rho K) / 2 with K = sum L^+ L (within degenerate levels)
+    same = ap == aq
+    kmat = np.zeros((d, d), dtype=complex)
+    np.add.at(kmat, (bp[same], bq[same]), weight[same].conj())
+    ka, kb = np.nonzero(kmat)
+    idx = np.arange(d)
+    # (K rho)_(a, c) = sum_b K_ab rho_bc ; (rho K)_(a, c) = sum_b rho_ab K_bc
+    rows += [np.add.outer(ka * d, idx).ravel(), np.add.outer(idx * d, kb).ravel()]
+    cols += [np.add.outer(kb * d, idx).ravel(), np.add.outer(idx * d, ka).ravel()]
+    kv = -0.5 * kmat[ka, kb]
+    vals += [np.repeat(kv, d), np.tile(kv, d)]
+    r = np.concatenate(rows)
+    c = np.concatenate(cols)
+    v = np.concatenate(vals)
+    population = (r // d == r % d) & (c // d == c % d)
+    keep = (r != c) & ~population & (v != 0)
+    if not keep.any():
+        return None
+    out = sparse.csr_matrix((v[keep], (r[keep], c[keep])), shape=(d * d, d * d))
+    out.sum_duplicates()
+    out.eliminate_zeros()
+    return out if out.nnz else None
+
+
+def propagate_sector_modes(
+    A: NDArray[np.complex128],
+    free: NDArray[np.bool_],
+    rate: NDArray[np.complex128],
+    coupling: list[sparse.csr_matrix | None],
+    h: float,
+    weights: NDArray[np.float64],
+) -> tuple[NDArray[np.complex128], NDArray[np.bool_]]:
+    """Free oscillations of the modes that a Bohr sector couples, propagated together.
+
+    The modes ``free`` with amplitudes ``A`` (d, d) obey ``A' = diag(rate) A + C A``
+    over the step (per unit x), with ``rate`` (m + 1, d, d) their own rates at the
+    step's nodes and ``C`` the resonant coupling there (``tf`` times the sector
+    coupling, plus the frame's rotation inside degenerate levels).  Modes of one
+    sector share their Bohr frequency, so the coupling does not oscillate; each
+    connected group is propagated with the exponential of
+    ``h sum_j w_j (diag(rate_j) + C_j)`` (the first Magnus term with the step's
+    quadrature; the fast common phase is exact).
+
+    Returns
+    -------
+    (A_new, done)
+        Propagated amplitudes of the coupled modes (zero elsewhere) and the mask of the
+        modes propagated here; the caller propagates the others as before.
+    """
+    d = A.shape[0]
+    done = np.zeros((d, d), dtype=bool)
+    out = np.zeros((d, d), dtype=complex)
+    idx = np.flatnonzero(free.ravel())
+    mats = [(j, C) for j, C in enumerate(coupling) if C is not None]
+    if idx.size < 2 or not mats:
+        return out, done
+    total = sparse.csr_matrix((d * d, d * d), dtype=complex)
+    for j, C in mats:
+        total = total + (h * weights[j]) * C
+    sub = total[idx][:, idx]
+    if sub.nnz == 0:
+        return out, done
+    n_comp, comp = csgraph.connected_components(abs(sub) + abs(sub).T, directed=False)
+    sizes = np.bincount(comp, minlength=n_comp)
+    growth = h * np.einsum("j,jab->ab", weights, rate).ravel()
+    flat_out = out.ravel()
+    flat_done = done.ravel()
+    amps = A.ravel()
+    for k in np.flatnonzero(sizes > 1):
+        members = np.flatnonzero(comp == k)
+        modes = idx[members]
+        block = sub[members][:, members].toarray()
+        block[np.diag_indices(members.size)] += growth[modes]
+        flat_out[modes] = expm(block) @ amps[modes]
+        flat_done[modes] = True
+    return out, done
+
+
+def rotation_superoperator(K: NDArray[np.float64]) -> sparse.csr_matrix:
+    """``rho -> -[K, rho]`` as a sparse matrix on the row-major vector of rho."""
+    d = K.shape[0]
+    Ks = sparse.csr_matrix(K)
+    eye = sparse.identity(d, format="csr")
+    return sparse.csr_matrix(-(sparse.kron(Ks, eye) - sparse.kron(eye, Ks.T)))
