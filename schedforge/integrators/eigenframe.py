@@ -216,6 +216,22 @@ def _degenerate_clusters(E: NDArray[np.float64], tol: float) -> list[tuple[int, 
     return out
 
 
+def _opening_cluster(E: NDArray[np.float64], turned: NDArray[np.intp]) -> NDArray[np.intp] | None:
+    """All labels degenerate with the ``turned`` ones at the energies ``E``, or None.
+
+    When the frame turns too far over a step only inside degenerate levels, those
+    levels split along the step into eigenvectors that the basis chosen so far does
+    not follow; None when some turned level is not degenerate (a crossing instead).
+    """
+    if turned.size == 0:
+        return None
+    tol = _degeneracy_tol(E[None])
+    near = np.abs(E[:, None] - E[None, turned]) <= tol
+    if np.any(near.sum(axis=0) < 2):
+        return None
+    return np.flatnonzero(near.any(axis=1))
+
+
 def _transported(Vc: NDArray[np.float64], Q: NDArray[np.float64]) -> NDArray[np.float64]:
     """The orthonormal basis of span(Vc) closest to ``Q``: ``P Q (Q^T P Q)^(-1/2)``.
 
@@ -1364,6 +1380,7 @@ def integrate_eigenframe(
     ranks = np.arange(d)  # energy rank of each label (see DiabaticPassage)
     crossing_err = 0.0
     sector_tol = degeneracy_tol
+    rebased_at = -1.0  # where the basis of splitting degenerate levels was last chosen
 
     def fail(message: str) -> dict[str, Any]:
         return {
@@ -1405,6 +1422,22 @@ def integrate_eigenframe(
             if passed is not None:
                 passage, fr, adiabatic = passed
                 stats["frame_evals"] += xs.size
+        if np.min(overlaps) < FRAME_OVERLAP_MIN and passage is None and rebased_at != x:
+            turned = np.flatnonzero(np.min(overlaps, axis=0) < FRAME_OVERLAP_MIN)
+            opening = _opening_cluster(last_frame.E[-1], turned)
+            if opening is not None:
+                # degenerate levels split here: choose, inside their eigenspace, the basis
+                # they split into, and re-express the state in it (a change of basis at
+                # one point inside a degenerate eigenspace is exact)
+                new_ref = Vref.copy()
+                new_ref[:, opening] = _transported(Vref[:, opening], fr.V[-1][:, opening])
+                p, c, A = _sudden_change(Vref, new_ref, opening, last_frame.pi[-1], p, c, A)
+                Vref = new_ref
+                last_frame = replace(last_frame, V=new_ref[None])
+                previous = None
+                rebased_at = x
+                stats["splitting_levels"] = stats.get("splitting_levels", 0) + 1
+                continue
         if np.min(overlaps) < FRAME_OVERLAP_MIN and passage is None:
             if h < FOLLOW_STEP_MIN:
                 return fail(
