@@ -19,7 +19,8 @@ Every point is committed in its own transaction the moment it arrives, by the on
 process that writes (the sweep's main process), so a crash or ``kill -9`` loses
 at most the points that were still being computed.  A second sweep writing into
 the same folder at the same time is refused (an exclusive lock on
-``DIR/sweep.lock``, released by the operating system if the process dies).
+``DIR/sweep.lock``, released by the operating system if the process dies, removed
+when the sweep finishes).
 
 A store made for a different physics (different ``physics_hash``) is refused with
 an :class:`~schedforge.errors.InputError` naming ``--out``;
@@ -150,22 +151,42 @@ def utc_now() -> str:
 
 
 def _lock_file(path: Path) -> Any:
-    """Take an exclusive, non-blocking lock on ``path``; return the open file."""
-    fh = open(path, "a+")  # held open (locked) for the store's lifetime
-    try:
-        import fcntl
-    except ImportError:  # not POSIX: no inter-process lock, single user assumed
-        return fh
-    try:
-        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except OSError:
-        fh.close()
-        raise InputError(
-            "--out",
-            f"is in use by another running sweep ({path} is locked): wait for it to "
-            "finish or choose another directory",
-        ) from None
-    return fh
+    """Take an exclusive, non-blocking lock on ``path``; return the open file.
+
+    The lock file is removed when the store closes (:func:`_unlock_file`); a
+    lock taken on a file that another process removed meanwhile is retried on
+    the new file, so two sweeps never both hold "the" lock.
+    """
+    for _ in range(10):
+        fh = open(path, "a+")  # held open (locked) for the store's lifetime
+        try:
+            import fcntl
+        except ImportError:  # not POSIX: no inter-process lock, single user assumed
+            return fh
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            fh.close()
+            raise InputError(
+                "--out",
+                f"is in use by another running sweep ({path} is locked): wait for it to "
+                "finish or choose another directory",
+            ) from None
+        try:
+            same = os.stat(path).st_ino == os.fstat(fh.fileno()).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            return fh
+        fh.close()  # removed by a sweep that just finished: lock the new file
+    raise InputError("--out", f"could not lock {path}: it keeps being replaced")
+
+
+def _unlock_file(fh: Any) -> None:
+    """Remove the lock file while still holding the lock, then release it."""
+    with contextlib.suppress(OSError):
+        os.unlink(fh.name)
+    fh.close()
 
 
 class PointStore:
@@ -373,7 +394,7 @@ class PointStore:
                 conn.close()
             self._conn = None  # type: ignore[assignment]
         if self._lock is not None:
-            self._lock.close()
+            _unlock_file(self._lock)
             self._lock = None
 
     def __enter__(self) -> PointStore:

@@ -12,12 +12,11 @@ from __future__ import annotations
 
 import argparse
 import sys
-from pathlib import Path
 from typing import Any
 
 from ..errors import InputError
 from ..executors import EXECUTOR_KINDS, make_executor
-from .options import add_spec_argument, positive_int
+from .options import add_spec_argument, check_output_dir, positive_int
 
 __all__ = ["register", "run"]
 
@@ -109,9 +108,7 @@ def run(args: argparse.Namespace) -> int:
     from ..sweep import format_summary, run_sweep
 
     kind = _executor_kind(args)
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise InputError("--out", f"must be a directory, {out} is a file")
+    out = check_output_dir(args.out, "--out")
     spec = load_spec(args.spec)
     progress = "quiet" if args.quiet else "auto"
     with make_executor(kind, args.workers, args.scheduler, args.dask_local) as ex:
