@@ -418,7 +418,11 @@ def _tf_grid(value: Any, path: str) -> tuple[float, ...]:
             raise InputError(f"{path}.num", "must be >= 2 when start and stop differ")
         if num > 1 and stop == start:
             raise InputError(f"{path}.num", "must be 1 when start equals stop")
-        return tuple(float(t) for t in np.geomspace(start, stop, num))
+        # 12 significant digits: the grid's own values, without the last-bit noise of
+        # geomspace (2000.0000000000002); the end points stay exactly as written
+        grid = [float(f"{t:.12g}") for t in np.geomspace(start, stop, num)]
+        grid[0], grid[-1] = start, stop
+        return tuple(grid)
     if not isinstance(value, list):
         raise InputError(
             path,

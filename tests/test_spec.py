@@ -89,8 +89,16 @@ def test_template_is_valid_and_shows_the_defaults() -> None:
 def test_log_grid_matches_closed_form() -> None:
     spec = parse("version = 1\n[sweep]\ntf_ns = {start = 100.0, stop = 10000.0, num = 9}\n")
     expected = 10.0 ** np.linspace(2.0, 4.0, 9)
-    np.testing.assert_allclose(spec.sweep.tf_ns, expected, rtol=1e-13)
+    np.testing.assert_allclose(spec.sweep.tf_ns, expected, rtol=1e-12)  # 12 digits kept
     assert spec.sweep.tf_ns[0] == 100.0 and spec.sweep.tf_ns[-1] == 10000.0
+
+
+def test_log_grid_values_are_round() -> None:
+    # geomspace gives 2000.0000000000002 and 2999.999999999998 for these grids
+    spec = parse("version = 1\n[sweep]\ntf_ns = {start = 1000.0, stop = 8000.0, num = 4}\n")
+    assert spec.sweep.tf_ns == (1000.0, 2000.0, 4000.0, 8000.0)
+    spec = parse("version = 1\n[sweep]\ntf_ns = {start = 1000.0, stop = 27000.0, num = 4}\n")
+    assert spec.sweep.tf_ns == (1000.0, 3000.0, 9000.0, 27000.0)
 
 
 def test_full_spec_with_every_section() -> None:
