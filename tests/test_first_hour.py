@@ -206,3 +206,33 @@ def test_finished_sweep_leaves_no_lock_file(run_cli, write_spec, tmp_path) -> No
     )
     assert code == 0, err
     assert (out / "sweep.sqlite").exists() and not (out / "sweep.lock").exists()
+
+
+# -- simulate: warnings on stderr, no unknown counts, the played waveform -----------------
+def test_simulate_prints_warnings_on_stderr_and_no_unknown_counts(run_cli, write_spec) -> None:
+    table = Path(__file__).resolve().parents[1] / "examples" / "device_curves_example.csv"
+    spec = write_spec(
+        f'version = 1\n[device]\ncurves = "{table.as_posix()}"\n'
+        '[schedule]\nfamily = "gevrey"\ntf_ns = 200.0\n'
+    )
+    code, out, err = run_cli("simulate", spec, "--quiet")
+    assert code == 0, err
+    assert "?" not in out  # the eigenframe integrator counts no right-hand sides
+    assert "warning:" in err and "warning:" not in out
+
+
+def test_simulate_as_played_needs_a_waveform(run_cli) -> None:
+    code, _, err = run_cli("simulate", "builtin:driven-qubit", "--as-played")
+    assert code == 2 and "--as-played" in err and "[waveform]" in err
+
+
+def test_progress_line_carries_a_note() -> None:
+    import io
+
+    from schedforge.progress import AnnealProgress
+
+    clock = iter([0.0, 5.0]).__next__
+    stream = io.StringIO()
+    progress = AnnealProgress(stream=stream, mode="lines", clock=clock, note="played waveform")
+    progress(0.5)
+    assert stream.getvalue().rstrip().endswith("; played waveform")
