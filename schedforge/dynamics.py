@@ -39,7 +39,7 @@ import numpy as np
 from numpy.typing import NDArray
 from threadpoolctl import threadpool_limits
 
-from .bath import Bath, make_bath
+from .bath import Bath, make_bath, steady_state_advice
 from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eigen_decomposition
 from .device import make_device_curves
 from .errors import InputError, SteadyStateError
@@ -261,9 +261,8 @@ class System:
                 f"leaves the final generator L(1) with {final.zero_count} independent "
                 "steady states "
                 "(its zero eigenvalue is degenerate), so the distance to 'the' steady state is "
-                "undefined. This happens when the coupling operators commute with H(1), e.g. "
-                'coupling = "z" when A(1) = 0. Use coupling "x" or "y", or device curves '
-                "with A(1) > 0",
+                "undefined: "
+                + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
             )
         gaps = np.full(grid.size, np.nan)
         skipped = []

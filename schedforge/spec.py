@@ -200,7 +200,11 @@ def _table(value: Any, path: str) -> dict[str, Any]:
 
 def _suggest(word: str, known: Sequence[str]) -> str:
     """``"; did you mean `x`?"`` for the nearest known word, or ``""``."""
-    close = difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
+    same_letters = [k for k in known if k.lower() == word.lower()]
+    close = same_letters or difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
+    if not close:  # also compare without case ("Beta" -> "beta")
+        lowered = {k.lower(): k for k in known}
+        close = [lowered[c] for c in difflib.get_close_matches(word.lower(), list(lowered), n=1)]
     return f"; did you mean `{close[0]}`?" if close else ""
 
 

@@ -179,6 +179,17 @@ def _nan_result(wall_s: float) -> dict[str, Any]:
     }
 
 
+def _played_note(pending: Sequence[SweepPoint]) -> str:
+    """The start line's note on played-waveform points, which cost far more."""
+    n = sum(1 for p in pending if p.variant == "realized")
+    if not n:
+        return ""
+    return (
+        f"; {n} of them as played, each far slower than its ideal twin (it follows every "
+        "sample: one qubit at 3 us, 16 s instead of 0.05 s)"
+    )
+
+
 def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
     """Simulate one point; return its store row (a plain, picklable dict).
 
@@ -418,6 +429,7 @@ def run_sweep(
             f"sweep: {len(points)} points, {len(points) - len(pending)} already in "
             f"{folder / STORE_NAME}, {len(pending)} to compute on {ex.describe()}"
             + (f" (old store archived to {archived})" if archived else "")
+            + _played_note(pending)
         )
         for w in warnings:
             reporter.log(f"warning: {w}")

@@ -76,10 +76,12 @@ def test_example_runs_every_command_it_is_meant_for(path: Path, run_cli, tmp_pat
         elif command == "sweep":
             copy = quick_copy(path, tmp_path, tf)
             code, out, err = run_cli(
-                "sweep", copy, "--out", tmp_path / "sweep", "--executor", "serial", "--quiet"
+                "sweep", copy, "--out", tmp_path / "sweep", "--executor", "serial"
             )
             assert code == 0, err
             assert (tmp_path / "sweep" / "report.html").exists()
+            if "[waveform]" in copy.read_text(encoding="utf-8"):  # played points said slow
+                assert "as played, each far slower" in err
         elif command == "budget":
             code, out, err = run_cli("budget", path, "--error", "1e-5", "--confirm", "0", "--quiet")
             assert code == 0, err

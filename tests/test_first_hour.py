@@ -236,3 +236,22 @@ def test_progress_line_carries_a_note() -> None:
     progress = AnnealProgress(stream=stream, mode="lines", clock=clock, note="played waveform")
     progress(0.5)
     assert stream.getvalue().rstrip().endswith("; played waveform")
+
+
+# -- messages ------------------------------------------------------------------------------
+def test_wrong_case_choice_gets_a_suggestion(run_cli, write_spec) -> None:
+    code, _, err = run_cli("inspect", write_spec('version = 1\n[bath]\ncoupling = "X"\n'))
+    assert code == 2 and "did you mean `x`?" in err
+
+
+def test_idle_qubit_is_named_instead_of_a_coupling_it_already_has(run_cli, write_spec) -> None:
+    # qubit 1 has no field and no coupling: with A(1) = 0, H(1) does not act on it, so the
+    # final Davies generator has a steady state per state of that qubit (Spohn 1977, from
+    # memory: uniqueness needs the couplings to connect the levels of H(1))
+    spec = write_spec("version = 1\n[problem]\nqubits = 2\nh = [0.5, 0.0]\nJ = []\n")
+    code, _, err = run_cli("simulate", spec, "--quiet")
+    assert code == 2
+    assert "qubit(s) 1" in err and "x or y" not in err and '"x" or "y"' not in err
+    spec = write_spec('version = 1\n[bath]\ncoupling = "z"\n')
+    code, _, err = run_cli("simulate", spec, "--quiet")
+    assert code == 2 and "x or y" in err
