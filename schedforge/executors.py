@@ -17,8 +17,8 @@ the caller can report it without stopping the other items.
 
 Worker processes run with one BLAS/OpenMP thread each (``OMP_NUM_THREADS`` and
 friends set to 1 unless already set), so that N workers on N cores do not
-oversubscribe the machine.  Dask is an optional extra
-(``pip install "schedforge[dask]"``) imported only when asked for.
+oversubscribe the machine.  Dask is an optional extra (:data:`DASK_INSTALL_HINT`)
+imported only when asked for.
 """
 
 from __future__ import annotations
@@ -37,6 +37,7 @@ from typing import Any
 from .errors import InputError
 
 __all__ = [
+    "DASK_INSTALL_HINT",
     "EXECUTOR_KINDS",
     "THREAD_ENV_VARS",
     "DaskExecutor",
@@ -269,13 +270,20 @@ class ProcessExecutor(Executor):
 
 
 # -- Dask distributed --------------------------------------------------------------
+#: How to install the optional Dask extra (schedforge is installed from its checkout).
+DASK_INSTALL_HINT = (
+    'install it with pip install "dask[distributed]>=2024.1" (or, from the schedforge '
+    'checkout, pip install -e ".[dask]")'
+)
+
+
 def _import_distributed() -> Any:
     try:
         import distributed
     except ImportError as exc:
         raise InputError(
             "--executor",
-            f"dask needs the optional extra: pip install 'schedforge[dask]' (import failed: {exc})",
+            f"dask is not installed ({exc}); {DASK_INSTALL_HINT}",
         ) from None
     return distributed
 

@@ -632,7 +632,8 @@ A0_ghz = 3.5
 B0_ghz = 2.5
 
 [problem]
-# H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1..{MAX_QUBITS} qubits.
+# H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1 to {MAX_QUBITS} qubits
+# (cost per point: seconds up to 5 qubits, about 25 s at 6, minutes at 7, hours at 8+).
 qubits = 1
 h = [0.7]          # one entry per qubit
 J = []             # couplings as [i, j, J_ij] with 0 <= i < j < qubits, e.g. [[0, 1, -1.0]]
@@ -647,18 +648,33 @@ lamb_shift = false       # include the bath-induced energy shift
 
 [schedule]
 # s = f(t / tf).  k_start / k_end: how many derivatives of s vanish at t = 0 / t = tf.
+# Families and the keys they use:
+#   linear  s = x; no flat end (k_start, k_end, tail ignored)
+#   beta    regularized incomplete beta I_x(1 + k_start, 1 + k_end); real k allowed
+#   poly    a base curve (the straight line s = x, or the curve through `points` when
+#           given) whose last `tail` of the anneal is replaced by a polynomial with k_end
+#           vanishing derivatives at the end; k_start must be 0
+#   points  a monotone curve through the control `points`, its last `tail` reshaped
+#           like poly (k_end vanishing derivatives at the end); k_start must be 0
+#   gevrey  every derivative vanishes at the end (k = inf; the value of k_end is not
+#           used); k_start > 0 makes the start flat to every order too
 family = "beta"          # linear, beta, poly, gevrey or points
 k_start = 0
 k_end = 2
 tf_ns = 1000.0           # anneal time
 tail = 0.2               # fraction of the anneal reshaped by the poly and points families
-# points = [[0.0, 0.0], [0.5, 0.4], [1.0, 1.0]]   # [x, s] control points (points family)
+# points = [[0.0, 0.0], [0.5, 0.4], [1.0, 1.0]]   # [x, s] control points (points, poly)
 
 [initial]
 state = "gibbs"          # "gibbs" (thermal state of H(0)) or "ground"
 
 [numerics]
-integrator = "auto"      # "auto" or the name of an integrator
+# integrator: "auto" (eigenframe for open systems, general for closed ones), or one of
+#   "eigenframe" (open systems; cost independent of tf), "general" (adaptive DOP853, the
+#   reference; cost grows with tf), "closed" (the general one on a closed system, as it
+#   is reported), "held" (piecewise-constant played waveforms; used for them whatever
+#   is named)
+integrator = "auto"
 rtol = 1e-10
 atol = 1e-14
 

@@ -255,3 +255,21 @@ def test_idle_qubit_is_named_instead_of_a_coupling_it_already_has(run_cli, write
     spec = write_spec('version = 1\n[bath]\ncoupling = "z"\n')
     code, _, err = run_cli("simulate", spec, "--quiet")
     assert code == 2 and "x or y" in err
+
+
+def test_dask_hint_installs_from_what_exists(monkeypatch) -> None:
+    """The hint names the dependency of the project's own extra (pyproject.toml)."""
+    import sys
+    import tomllib
+
+    from schedforge.errors import InputError
+    from schedforge.executors import _import_distributed
+
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import fails
+    with pytest.raises(InputError) as info:
+        _import_distributed()
+    message = str(info.value)
+    assert "schedforge[dask]" not in message and 'pip install -e ".[dask]"' in message
+    project = Path(__file__).resolve().parents[1] / "pyproject.toml"
+    extra = tomllib.loads(project.read_text())["project"]["optional-dependencies"]["dask"]
+    assert f'pip install "{extra[0]}"' in message

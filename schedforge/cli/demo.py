@@ -14,10 +14,9 @@ from __future__ import annotations
 import argparse
 import sys
 import time
-from pathlib import Path
 from typing import Any
 
-from ..errors import InputError
+from .options import check_output_dir
 
 __all__ = ["register", "run"]
 
@@ -65,9 +64,7 @@ def run(args: argparse.Namespace) -> int:
     from ..report import analyse_sweep_dir
     from ..sweep import run_sweep
 
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise InputError("--out", f"must be a directory, {out} is a file")
+    out = check_output_dir(args.out, "--out")
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     status = 0
