@@ -112,7 +112,7 @@ def _work(stats: dict[str, Any]) -> str:
     parts = [
         f"{stats[key]} {words}"
         for key, words in (("steps", "steps"), ("rhs_evaluations", "right-hand-side evaluations"))
-        if isinstance(stats.get(key), int)
+        if isinstance(stats.get(key), int) and stats[key] > 0
     ]
     return "".join(f"{p}, " for p in parts)
 
