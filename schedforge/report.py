@@ -219,17 +219,43 @@ def _make_figures(
 
 # -- HTML ---------------------------------------------------------------------------
 _CSS = """
-body { font-family: sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
-table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0 1.5em; }
-th, td { border: 1px solid #bbb; padding: 3px 7px; text-align: right; }
-th { background: #eee; }
+body { font-family: sans-serif; max-width: 1200px; margin: 2em auto; padding: 0 1em;
+       color: #222; line-height: 1.4; }
+.scroll { overflow-x: auto; margin: 0.5em 0 1.5em; }
+table { border-collapse: collapse; font-size: 0.85em; }
+th, td { border: 1px solid #bbb; padding: 3px 7px; text-align: right; vertical-align: top; }
+th { background: #eee; font-weight: 600; text-align: center; }
 td.t { text-align: left; }
+td.msg { text-align: left; min-width: 13em; max-width: 36em; }
+td.n { white-space: nowrap; }
 .caution { border: 2px solid #c33; background: #fff3f3; padding: 0.8em 1em; }
-.plots img { max-width: 48%; margin: 0.5%; border: 1px solid #ddd; }
-img.wide { max-width: 80%; }
+.summary { font-size: 1.05em; }
+.plots { display: flex; flex-wrap: wrap; gap: 1%; }
+.plots img { width: 49%; margin: 0.5% 0; border: 1px solid #ddd; box-sizing: border-box; }
+img.wide { max-width: 100%; width: 760px; }
 pre { background: #f6f6f6; padding: 0.8em; overflow-x: auto; font-size: 0.85em; }
-.agrees { color: #060; } .disagrees { color: #a00; }
+.agrees { color: #060; } .disagrees { color: #a00; } .failed { color: #a00; }
+@media (max-width: 800px) { .plots img { width: 100%; } }
 """
+
+#: Column headers of the report's tables (the CSV column name is the cell's tooltip).
+_HEADERS = {
+    "k_start": "k start",
+    "k_end": "k end",
+    "slope_stderr": "std. error",
+    "expected_slope": "expected slope",
+    "regime_tf_ns": "regime tf (ns)",
+    "n_points": "points in regime",
+    "coefficient_fit": "C<sub>k</sub> fitted (ns<sup>k+1</sup>)",
+    "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>k+1</sup>)",
+    "C_k": "C<sub>k</sub>",
+    "tf_ns": "tf (ns)",
+    "trace_distance": "trace distance",
+    "ground_infidelity": "ground infidelity",
+    "excess_energy_ghz": "excess energy (GHz)",
+    "wall_s": "wall time (s)",
+}
+_MESSAGE_COLUMNS = ("message",)
 
 
 def _fmt(v: Any) -> str:
@@ -241,18 +267,47 @@ def _fmt(v: Any) -> str:
 def _html_table(
     columns: Sequence[str], rows: Sequence[Mapping[str, Any]], text_cols: Sequence[str] = ()
 ) -> str:
-    out = ["<table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in columns) + "</tr>"]
+    head = "".join(
+        f'<th title="{html.escape(c)}">{_HEADERS.get(c, html.escape(c))}</th>' for c in columns
+    )
+    out = ['<div class="scroll"><table><tr>' + head + "</tr>"]
     for r in rows:
         cells = []
         for c in columns:
-            cls = ' class="t"' if c in text_cols else ""
             val = r.get(c, "")
-            if c == "verdict":
+            if c in _MESSAGE_COLUMNS:
+                cls = ' class="msg"'
+            elif c == "verdict" or c == "status":
                 cls = f' class="t {html.escape(str(val)).replace(" ", "-")}"'
+            elif c in text_cols:
+                cls = ' class="t"'
+            else:
+                cls = ' class="n"'
             cells.append(f"<td{cls}>{_fmt(val)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</table>")
+    out.append("</table></div>")
     return "\n".join(out)
+
+
+def _fit_display_row(row: Mapping[str, Any]) -> dict[str, Any]:
+    """A fit.csv row with the regime's two ends in one cell (``3000 to 1e+06``)."""
+    out = dict(row)
+    lo, hi = row.get("regime_tf_min_ns"), row.get("regime_tf_max_ns")
+    both = all(isinstance(v, float) and math.isfinite(v) for v in (lo, hi))
+    out["regime_tf_ns"] = f"{lo:.4g} to {hi:.4g}" if both else math.nan
+    return out
+
+
+def _points_summary(rows: Sequence[Mapping[str, Any]]) -> str:
+    """``"15 points: 11 ok, 4 failed"`` (every status that occurs, counted)."""
+    counts: dict[str, int] = {}
+    for r in rows:
+        status = str(r.get("status", "") or "unknown")
+        counts[status] = counts.get(status, 0) + 1
+    parts = [f"{n} {status}" for status, n in sorted(counts.items(), key=lambda i: i[0] != "ok")]
+    return f"{len(rows)} point{'s' if len(rows) != 1 else ''}" + (
+        ": " + ", ".join(parts) if parts else ""
+    )
 
 
 def _img(name: str, png: bytes, wide: bool = False) -> str:
@@ -275,8 +330,9 @@ def render_report(
     """The report as one self-contained HTML string (plots as base64 PNG)."""
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     fit_cols = ["family", "variant", "k_start", "k_end", "slope", "slope_stderr",
-                "expected_slope", "regime_tf_min_ns", "regime_tf_max_ns", "n_points",
+                "expected_slope", "regime_tf_ns", "n_points",
                 "coefficient_fit", "coefficient_predicted", "verdict", "message"]  # fmt: skip
+    fit_rows = [_fit_display_row(f.row()) for f in fits]
     pred_rows = [
         {"family": k[0], "k_start": k[1], "k_end": k[2], "C_k": p.coefficient,
          "unit": f"ns^{p.k + 1}" if p.ok else "", "status": p.status, "message": p.message}
@@ -294,20 +350,35 @@ def render_report(
         f"{html.escape(spec.source or 'given in Python')}.</p>",
         f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
     ]
+    n_bad = sum(1 for r in rows if str(r.get("status", "")) != "ok")
+    summary = html.escape(_points_summary(rows))
+    if n_bad:
+        summary += (
+            f' <span class="failed">({n_bad} did not succeed: their numbers are NaN and '
+            "never fitted; see the Points table)</span>"
+        )
+    parts.append(f'<p class="summary"><b>Points.</b> {summary}.</p>')
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    agrees = any(f.verdict == "agrees" for f in fits)
     parts += [
         "<h2>Scaling fits</h2>",
-        "<p>Verdict <i>agrees</i>: fitted slope within "
-        f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
+        "<p>"
+        + (
+            "Verdict <i>agrees</i>: fitted slope within "
+            if agrees
+            else "No fit agrees with its law; a fit would agree with its slope within "
+        )
+        + f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
         "Points at or below the numerical floor "
         f"({DEFAULT_FLOOR_FACTOR:g} &times; numerics.atol = "
         f"{DEFAULT_FLOOR_FACTOR * spec.numerics.atol:.2g}) and failed points are never "
         "fitted; the regime is the longest run of points at the large-tf end whose local "
         f"slopes lie within a band of width {DEFAULT_REGIME_TOL} (widened by each slope's "
         "noise). No slope is given where the regime was not reached. "
-        "coefficient_fit is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf over "
-        "the regime; coefficient_predicted is C<sub>k</sub> from the final generator.</p>",
-        _html_table(fit_cols, [f.row() for f in fits], ("family", "variant", "verdict", "message")),
+        "C<sub>k</sub> fitted is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf "
+        "over the regime; C<sub>k</sub> predicted is from the final generator; both in "
+        "ns<sup>k+1</sup> (err = C<sub>k</sub> / tf<sup>k+1</sup>, tf in ns).</p>",
+        _html_table(fit_cols, fit_rows, ("family", "variant", "verdict", "regime_tf_ns")),
         "<h2>Predicted leading coefficients</h2>",
         "<p>C<sub>k</sub> = ||(L<sub>1</sub><sup>+</sup>)<sup>k+1</sup> "
         "d&sigma;/ds(1)||<sub>1</sub>"
@@ -327,7 +398,7 @@ def render_report(
         "<h2>Gaps along the anneal</h2>",
         _img("gap", pngs["gap"], wide=True),
         "<h2>Points</h2>",
-        f"<details><summary>{len(rows)} points</summary>",
+        f"<details><summary>{html.escape(_points_summary(rows))}</summary>",
         _html_table(point_cols, rows, ("family", "variant", "status")),
         "</details>",
         "<h2>Spec</h2>",

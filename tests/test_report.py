@@ -93,7 +93,7 @@ def test_report_is_self_contained_and_holds_every_plot(sweep_dir):
     assert not re.search(r'(src|href)="(https?:|file:|/)', text)
     # Cautions, tables and the spec.
     assert html.escape(CAUTION) in text
-    assert "regime_tf_min_ns" in text and "coefficient_predicted" in text
+    assert "regime tf (ns)" in text and "coefficient_predicted" in text  # header, its tooltip
     assert "[bath]" in text and "temperature_mk = 12.0" in text
 
 
