@@ -50,6 +50,7 @@ def test_every_example_is_listed() -> None:
     assert {p.name for p in SPECS} == set(QUICK_TF)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("path", SPECS, ids=lambda p: p.name)
 def test_example_runs_every_command_it_is_meant_for(path: Path, run_cli, tmp_path) -> None:
     commands = meant_for(path)

@@ -256,6 +256,7 @@ def dask_address():
     cluster.close()
 
 
+@pytest.mark.slow
 def test_executors_give_identical_points_csv(tmp_path, write_spec, dask_address):
     from schedforge.dynamics import simulate_spec
     from schedforge.executors import make_executor
@@ -282,6 +283,7 @@ def test_executors_give_identical_points_csv(tmp_path, write_spec, dask_address)
     assert row["ground_infidelity"] == direct.ground_infidelity
 
 
+@pytest.mark.slow
 def test_sigkill_then_rerun_completes_without_loss_or_repeat(tmp_path, write_spec):
     import os
     import signal
