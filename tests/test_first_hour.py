@@ -273,3 +273,18 @@ def test_dask_hint_installs_from_what_exists(monkeypatch) -> None:
     project = Path(__file__).resolve().parents[1] / "pyproject.toml"
     extra = tomllib.loads(project.read_text())["project"]["optional-dependencies"]["dask"]
     assert f'pip install "{extra[0]}"' in message
+
+
+@pytest.mark.parametrize(
+    "limits",
+    ["dac_bits = 6", "breakpoints = 20\nbreakpoint_tolerance = 5e-3\ndac_bits = 10"],
+)
+def test_design_exports_waveforms_without_a_sample_rate(run_cli, write_spec, tmp_path, limits):
+    """Quantized levels or breakpoints without a sample grid (was an internal error)."""
+    spec = write_spec(f"version = 1\n[schedule]\ntf_ns = 100.0\nk_end = 1\n[waveform]\n{limits}\n")
+    out = tmp_path / "w.csv"
+    code, _, err = run_cli("design", spec, "--out", out, "--plot", tmp_path / "w.png")
+    assert code == 0, err
+    table = read_samples_csv(out)
+    bits = parse_fields(table.metadata["waveform"])["dac_bits"]
+    np.testing.assert_array_equal(table.dac_code / (2**bits - 1), table.s)
