@@ -63,8 +63,10 @@ Stat. Assoc. 22, 209, 1927).
 
 from __future__ import annotations
 
+import csv
 import math
-from collections.abc import Callable, Iterator, Sequence
+import os
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -73,6 +75,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.stats import norm
 
 from .errors import InputError
+from .fileio import atomic_write
 from .problem_families import IsingProblem
 
 __all__ = [
@@ -87,8 +90,14 @@ __all__ = [
     "ground_states",
     "noise_directions",
     "noisy_problem",
+    "ProblemPrecision",
+    "SizeRow",
+    "problem_precision",
+    "size_growth",
     "spin_configurations",
+    "summarize_sizes",
     "wilson_interval",
+    "write_table_csv",
 ]
 
 #: Terms a noise model may switch on.
@@ -595,3 +604,209 @@ def find_precision(
         else:
             hi, p_hi = mid, p_mid
     return PrecisionResult(target, lo, hi, p_lo, p_hi, evals, "bracketed")
+
+
+# ---------------------------------------------------------------------------
+# studies: one problem, and a family against size
+# ---------------------------------------------------------------------------
+#: Points of the default tabulated probability curve.
+CURVE_POINTS = 25
+
+
+@dataclass(frozen=True)
+class ProblemPrecision:
+    """What control errors do to one problem.
+
+    Attributes
+    ----------
+    critical : CriticalLevels
+        The per-draw critical levels.
+    at_level : FlipEstimate
+        The estimate at the noise model's ``level``.
+    curve : tuple of FlipEstimate
+        The estimate at each tabulated level.
+    search : PrecisionResult
+        The bracketing search for the largest level below ``target``.
+    crossing : float
+        The exact crossing of the estimate (:meth:`CriticalLevels.crossing_level`);
+        it lies in the search's bracket.
+    conservative : float
+        The largest level whose Wilson upper bound stays below ``target``.
+    """
+
+    critical: CriticalLevels
+    at_level: FlipEstimate
+    curve: tuple[FlipEstimate, ...]
+    search: PrecisionResult
+    crossing: float
+    conservative: float
+
+
+def _curve_levels(critical: CriticalLevels, noise: Any, crossing: float) -> list[float]:
+    if noise.levels:
+        return sorted(float(x) for x in noise.levels)
+    finite = critical.levels[np.isfinite(critical.levels)]
+    top = max(noise.level, crossing if math.isfinite(crossing) else 0.0)
+    if top <= 0:
+        top = float(np.max(finite)) if finite.size else 1.0
+    return [float(x) for x in np.linspace(0.0, 2.0 * top, CURVE_POINTS)]
+
+
+def problem_precision(problem: IsingProblem, noise: Any) -> ProblemPrecision:
+    """Probability curve, estimate at the noise level and the precision needed.
+
+    Parameters
+    ----------
+    problem : IsingProblem
+    noise : NoiseSpec
+        Uses ``level``, ``terms``, ``draws``, ``seed``, ``target``, ``confidence``
+        and ``levels``.
+
+    Returns
+    -------
+    ProblemPrecision
+    """
+    crit = critical_levels(problem, noise.draws, noise.seed, noise.terms)
+    crossing = crit.crossing_level(noise.target)
+    start = noise.level if noise.level > 0 else 0.01
+    search = find_precision(crit.probability, noise.target, start=start)
+    curve = tuple(crit.estimate(lv, noise.confidence) for lv in _curve_levels(crit, noise, crossing))
+    return ProblemPrecision(
+        critical=crit,
+        at_level=crit.estimate(noise.level, noise.confidence),
+        curve=curve,
+        search=search,
+        crossing=crossing,
+        conservative=crit.conservative_level(noise.target, noise.confidence),
+    )
+
+
+@dataclass(frozen=True)
+class SizeRow:
+    """Fragility of one generated problem (one size, one instance).
+
+    Attributes
+    ----------
+    size, instance : int
+    label : str
+    degeneracy : int
+        Size of the intended ground-state set.
+    estimate : FlipEstimate
+        At the noise model's level.
+    crossing : float
+        Largest level keeping the estimate below the target.
+    """
+
+    size: int
+    instance: int
+    label: str
+    degeneracy: int
+    estimate: FlipEstimate
+    crossing: float
+
+    def row(self) -> dict[str, Any]:
+        """A plain dict (CSV row)."""
+        return {
+            "size": self.size,
+            "instance": self.instance,
+            "problem": self.label,
+            "degeneracy": self.degeneracy,
+            **self.estimate.row(),
+            "crossing_level": self.crossing,
+        }
+
+
+def size_growth(
+    noise: Any, progress: Callable[[str], None] | None = None
+) -> list[SizeRow]:
+    """The probability at fixed noise for every size and instance of ``noise.problems``.
+
+    Parameters
+    ----------
+    noise : NoiseSpec
+        With a ``problems`` family.
+    progress : callable, optional
+        Called with a line of text after each problem.
+
+    Returns
+    -------
+    list of SizeRow
+        Sorted by size, then instance.
+    """
+    from .problem_families import make_problem
+
+    fam = noise.problems
+    if fam is None:
+        raise InputError("noise.problems", "is required for the growth with size")
+    out = []
+    for size in sorted(fam.sizes):
+        for inst in range(fam.instances):
+            prob = make_problem(
+                fam.graph,
+                size,
+                couplings=fam.couplings,
+                fields=fam.fields,
+                field_scale=fam.field_scale,
+                seed=fam.seed,
+                instance=inst,
+            )
+            crit = critical_levels(prob, noise.draws, noise.seed, noise.terms)
+            row = SizeRow(
+                size,
+                inst,
+                prob.label,
+                crit.degeneracy,
+                crit.estimate(noise.level, noise.confidence),
+                crit.crossing_level(noise.target),
+            )
+            out.append(row)
+            if progress is not None:
+                progress(
+                    f"{prob.label}: P = {row.estimate.probability:.3g} at level "
+                    f"{noise.level:g}, precision needed {row.crossing:.3g}"
+                )
+    return out
+
+
+def summarize_sizes(rows: Sequence[SizeRow]) -> list[dict[str, Any]]:
+    """Per size: mean, smallest and largest estimate over instances, and the median crossing.
+
+    The instances differ in their problems, so the spread between them is part of
+    what the family does; the Wilson intervals hold per instance only.
+    """
+    sizes = sorted({r.size for r in rows})
+    out = []
+    for n in sizes:
+        group = [r for r in rows if r.size == n]
+        p = np.array([r.estimate.probability for r in group])
+        c = np.array([r.crossing for r in group])
+        out.append(
+            {
+                "size": n,
+                "instances": len(group),
+                "probability_mean": float(p.mean()),
+                "probability_stderr": float(p.std(ddof=1) / math.sqrt(p.size))
+                if p.size > 1
+                else math.nan,
+                "probability_min": float(p.min()),
+                "probability_max": float(p.max()),
+                "crossing_median": float(np.median(c)),
+            }
+        )
+    return out
+
+
+def write_table_csv(path: str | os.PathLike[str], rows: Sequence[Mapping[str, Any]]) -> None:
+    """Write rows (dicts with the same keys) as CSV, atomically; floats with ``repr``."""
+
+    def cell(v: Any) -> str:
+        if isinstance(v, float | np.floating):
+            return repr(float(v))
+        return str(v)
+
+    columns = list(rows[0]) if rows else []
+    with atomic_write(path, "w", newline="") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(columns)
+        for r in rows:
+            writer.writerow([cell(r[c]) for c in columns])

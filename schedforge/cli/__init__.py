@@ -32,6 +32,7 @@ COMMAND_MODULES: list[str] = [
     "schedforge.cli.sweep",
     "schedforge.cli.report",
     "schedforge.cli.budget",
+    "schedforge.cli.precision",
     "schedforge.cli.demo",
 ]
 
