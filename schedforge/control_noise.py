@@ -84,14 +84,14 @@ __all__ = [
     "CriticalLevels",
     "FlipEstimate",
     "PrecisionResult",
+    "ProblemPrecision",
+    "SizeRow",
     "critical_levels",
     "draw_normals",
     "find_precision",
     "ground_states",
     "noise_directions",
     "noisy_problem",
-    "ProblemPrecision",
-    "SizeRow",
     "problem_precision",
     "size_growth",
     "spin_configurations",
@@ -257,8 +257,9 @@ def _energy_blocks(
     cross_hi = problem.i[b.cross]
     for block in range(b.n_blocks):
         s_hi = spin_configurations(high, [block])[0].astype(float) if high else np.zeros(0)
-        const = s_hi @ hw[:high] + (s_hi[problem.i[b.hi_pairs]] * s_hi[problem.j[b.hi_pairs]]) @ (
-            jw[b.hi_pairs]
+        const = (
+            s_hi @ hw[:high]
+            + (s_hi[problem.i[b.hi_pairs]] * s_hi[problem.j[b.hi_pairs]]) @ (jw[b.hi_pairs])
         )
         h_eff = h_lo.copy()
         if b.cross.size:
@@ -670,7 +671,9 @@ def problem_precision(problem: IsingProblem, noise: Any) -> ProblemPrecision:
     crossing = crit.crossing_level(noise.target)
     start = noise.level if noise.level > 0 else 0.01
     search = find_precision(crit.probability, noise.target, start=start)
-    curve = tuple(crit.estimate(lv, noise.confidence) for lv in _curve_levels(crit, noise, crossing))
+    curve = tuple(
+        crit.estimate(lv, noise.confidence) for lv in _curve_levels(crit, noise, crossing)
+    )
     return ProblemPrecision(
         critical=crit,
         at_level=crit.estimate(noise.level, noise.confidence),
@@ -716,9 +719,7 @@ class SizeRow:
         }
 
 
-def size_growth(
-    noise: Any, progress: Callable[[str], None] | None = None
-) -> list[SizeRow]:
+def size_growth(noise: Any, progress: Callable[[str], None] | None = None) -> list[SizeRow]:
     """The probability at fixed noise for every size and instance of ``noise.problems``.
 
     Parameters

@@ -163,7 +163,7 @@ class IsingProblem:
 
 def grid_shape(n: int) -> tuple[int, int]:
     """The most nearly square ``(rows, cols)`` with ``rows * cols = n`` and ``rows <= cols``."""
-    rows = int(math.isqrt(n))
+    rows = math.isqrt(n)
     while n % rows:
         rows -= 1
     return rows, n // rows

@@ -474,6 +474,7 @@ def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
     )
     return WaveformSpec(**kw)
 
+
 # -- [noise]: control errors (issue 17) -------------------------------------------
 #: Largest number of noise draws (guards against typos).
 MAX_NOISE_DRAWS = 1_000_000

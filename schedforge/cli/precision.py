@@ -47,12 +47,16 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--draws", type=positive_int("--draws"), metavar="N", help="override noise.draws"
     )
-    p.add_argument("--seed", type=positive_int("--seed", 0), metavar="S", help="override noise.seed")
+    p.add_argument(
+        "--seed", type=positive_int("--seed", 0), metavar="S", help="override noise.seed"
+    )
     p.add_argument(
         "--target", type=positive_float("--target"), metavar="P", help="override noise.target"
     )
     p.add_argument(
-        "--problem-only", action="store_true", help="skip the generated problems of [noise.problems]"
+        "--problem-only",
+        action="store_true",
+        help="skip the generated problems of [noise.problems]",
     )
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
@@ -153,7 +157,10 @@ def format_precision(summary: dict[str, Any]) -> str:
     if sizes:
         lines.append("")
         lines.append(f"generated problems at level {noise['level']:g}:")
-        head = f"{'qubits':>6} {'inst.':>5} {'P mean':>8} {'P min':>8} {'P max':>8} {'precision needed (median)':>26}"
+        head = (
+            f"{'qubits':>6} {'inst.':>5} {'P mean':>8} {'P min':>8} {'P max':>8} "
+            f"{'precision needed (median)':>26}"
+        )
         lines += [head, "-" * len(head)]
         for r in sizes:
             lines.append(
@@ -164,7 +171,9 @@ def format_precision(summary: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def _write_outputs(out: Path, precision: Any, rows: list[Any], summary: dict[str, Any]) -> list[Path]:
+def _write_outputs(
+    out: Path, precision: Any, rows: list[Any], summary: dict[str, Any]
+) -> list[Path]:
     from ..control_noise import summarize_sizes, write_table_csv
     from ..fileio import atomic_write_bytes, atomic_write_text
     from ..plotting.noise import plot_flip_curve, plot_size_growth
