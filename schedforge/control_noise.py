@@ -220,10 +220,17 @@ class _Blocks:
         return 1 << self.low
 
 
+def _pairs_within(problem: IsingProblem, high: int) -> int:
+    """Couplings among the qubits ``high .. n - 1``."""
+    return int(np.count_nonzero(problem.i >= high))
+
+
 def _blocks(problem: IsingProblem, columns: int) -> _Blocks:
     n = problem.n
     low = n
-    while low > 0 and (1 << low) * max(columns, problem.n) > _BLOCK_ENTRIES:
+    while low > 0 and (1 << low) * max(columns, low, _pairs_within(problem, n - low)) > (
+        _BLOCK_ENTRIES
+    ):
         low -= 1
     high = n - low
     in_lo_i = problem.i >= high
@@ -264,7 +271,10 @@ def _energy_blocks(
         h_eff = h_lo.copy()
         if b.cross.size:
             np.add.at(h_eff, cross_lo, s_hi[cross_hi, None] * jw[b.cross])
-        yield block * b.size, b.lo_spins @ h_eff + lo_fixed + const
+        E = b.lo_spins @ h_eff
+        E += lo_fixed
+        E += const
+        yield block * b.size, E
 
 
 def _tolerance(problem: IsingProblem) -> float:
@@ -494,16 +504,17 @@ def critical_levels(
             feats = np.concatenate([spins, spins[:, problem.i] * spins[:, problem.j]], axis=1)
             d_min = np.minimum(d_min, (feats @ dirs).min(axis=0))
     weights = np.concatenate([problem.coefficients()[:, None], dirs], axis=1)
-    crit = np.full(draws, np.inf)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for _, E in _energy_blocks(problem, weights):
-            gap = E[:, 0] - e0 - tol  # > 0 outside G
-            outside = gap > 0
-            if not outside.any():
-                continue
-            deficit = d_min[None, :] - E[outside, 1:]
-            ratio = np.where(deficit > 0, gap[outside, None] / deficit, np.inf)
-            np.minimum(crit, ratio.min(axis=0), out=crit)
+    # c_d = min_s gap_s / (d_min - D_sd) over deficits > 0, i.e. 1 / max_s (d_min - D_sd) / gap_s
+    # (states of G get weight 0 and cannot win the max, which is > 0 when some state competes)
+    worst = np.zeros(draws)
+    for _, E in _energy_blocks(problem, weights):
+        gap = E[:, 0] - e0 - tol  # > 0 outside G
+        inv_gap = np.divide(1.0, gap, out=np.zeros_like(gap), where=gap > 0)
+        T = d_min[None, :] - E[:, 1:]
+        T *= inv_gap[:, None]
+        np.maximum(worst, T.max(axis=0), out=worst)
+    with np.errstate(divide="ignore"):
+        crit = np.where(worst > 0, 1.0 / worst, np.inf)
     return CriticalLevels(problem, crit, int(seed), terms, e0, ground, tol)
 
 
