@@ -33,6 +33,7 @@ COMMAND_MODULES: list[str] = [
     "schedforge.cli.report",
     "schedforge.cli.budget",
     "schedforge.cli.precision",
+    "schedforge.cli.noise_sweep",
     "schedforge.cli.demo",
 ]
 
