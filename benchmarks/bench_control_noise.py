@@ -88,13 +88,9 @@ def main() -> None:
         for n in args.sizes:
             p = make_problem(graph, n, couplings="sign", seed=1)
             crit, wall, cpu, peak = _timed(lambda p=p: critical_levels(p, args.draws, 1))
-            line = (
-                f"{graph:>9} {n:>3} {args.draws:>5} {wall:>12.2f} {cpu:>7.2f} {peak / 1e6:>8.1f}"
-            )
+            line = f"{graph:>9} {n:>3} {args.draws:>5} {wall:>12.2f} {cpu:>7.2f} {peak / 1e6:>8.1f}"
             if not args.no_plain:
-                ref, wall2, _, peak2 = _timed(
-                    lambda p=p: plain_critical_levels(p, args.draws, 1)
-                )
+                ref, wall2, _, peak2 = _timed(lambda p=p: plain_critical_levels(p, args.draws, 1))
                 same = np.allclose(crit.levels, ref, rtol=1e-9, atol=0)
                 line += f" {wall2:>12.2f} {peak2 / 1e6:>8.1f} {wall2 / wall:>11.2f} {same!s:>5}"
             print(line, flush=True)
