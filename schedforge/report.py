@@ -454,6 +454,23 @@ def noise_figures(outcome: Any, precision: Any = None) -> dict[str, bytes]:
                     values.setdefault(name, []).append(r[key])
             fig = plot_ensemble_histograms(values, f"{xlabel} (tf = {tf_max:g} ns)", log=log)
             pngs[f"histogram_{key}"] = _png(fig)
+        nominal = {
+            (r["family"], r["k_start"], r["k_end"]): r["nominal_trace_distance"]
+            for r in outcome.per_point
+            if r["tf_ns"] == tf_max
+        }
+        relative: dict[str, list[float]] = {}
+        for r in draws:
+            ref = nominal.get((r["family"], r["k_start"], r["k_end"]), math.nan)
+            if r["tf_ns"] == tf_max and ref > 0:
+                name = _label_schedule(r["family"], r["k_start"], r["k_end"])
+                relative.setdefault(name, []).append(r["trace_distance"] / ref - 1.0)
+        fig = plot_ensemble_histograms(
+            relative,
+            f"trace distance / noiseless - 1 (tf = {tf_max:g} ns)",
+            log=False,
+        )
+        pngs["histogram_relative_trace_distance"] = _png(fig)
     for key, ylabel in (
         ("trace_distance_spread", "spread (std / mean) of the trace distance"),
         ("intended_probability_spread", "spread of the intended ground-state probability"),
