@@ -128,9 +128,7 @@ def _open_in_other_process(path) -> str:
 def test_second_writer_refused_while_first_open(tmp_path):
     first = PointStore(tmp_path / STORE_NAME, HASH_A)
     try:
-        assert "in use by another running sweep" in _open_in_other_process(
-            tmp_path / STORE_NAME
-        )
+        assert "in use by another running sweep" in _open_in_other_process(tmp_path / STORE_NAME)
         # The lock is re-entrant within the process that holds it.
         PointStore(tmp_path / STORE_NAME, HASH_A).close()
         assert "in use" in _open_in_other_process(tmp_path / STORE_NAME)
