@@ -704,6 +704,7 @@ version = {SPEC_VERSION}
 curves = "linear"
 A0_ghz = 3.5
 B0_ghz = 2.5
+# curves_sha256 = "..."  # optional: the SHA-256 the CSV must have (spec copies pin it)
 
 [problem]
 # H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1..{MAX_QUBITS} qubits.

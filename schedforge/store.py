@@ -68,6 +68,7 @@ __all__ = [
     "PointStore",
     "archive_outputs",
     "archive_sweep_dir",
+    "check_csv_complete",
     "folder_lock",
     "read_points_csv",
     "utc_now",
@@ -668,6 +669,32 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
                     ) from None
             out.append(row)
     return out
+
+
+def check_csv_complete(path: str | os.PathLike[str]) -> None:
+    """Refuse a CSV file with a line of too few or too many cells (truncated, damaged).
+
+    Lines starting with ``#`` and blank lines are skipped; the first other line is
+    the header.
+
+    Raises
+    ------
+    InputError
+        Naming the file and the line.
+    """
+    with open(path, newline="", encoding="utf-8-sig") as fh:
+        reader = csv.reader(line for line in fh if line.strip() and not line.startswith("#"))
+        width = None
+        for n, cells in enumerate(reader, start=1):
+            if width is None:
+                width = len(cells)
+                header_line = reader.line_num
+                continue
+            if len(cells) != width:
+                raise InputError(
+                    f"{path}: data row {n - 1} (after the header on line {header_line})",
+                    f"has {len(cells)} cells, the header {width}: the file is truncated or damaged",
+                )
 
 
 def _clip(value: Any, limit: int = 60) -> str:

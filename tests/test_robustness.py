@@ -192,6 +192,11 @@ def test_truncated_points_csv_named_by_file_and_line(tmp_path, write_spec, run_c
         read_points_csv(csv_path)
     assert info.value.field == f"{csv_path}: line 4"
     assert "truncated" in str(info.value)
+    # The report of a folder without its store says so too (it said k_start "must be
+    # finite" before).
+    (out / STORE_NAME).unlink()
+    code, _, err = run_cli("report", out)
+    assert code == 2 and "points.csv: data row 3" in err and "truncated" in err
 
 
 # -- inputs that crashed --------------------------------------------------------------------
@@ -360,3 +365,8 @@ def test_qubit_limit_and_memory_estimate(write_spec, monkeypatch):
 def test_archive_of_an_empty_folder_does_nothing(tmp_path):
     assert archive_sweep_dir(tmp_path) is None
     assert not os.listdir(tmp_path)
+
+
+def test_input_error_never_echoes_a_huge_value_whole():
+    err = InputError("spec." + "k" * 10_000, "must be short, got " + "x" * 1_000_000)
+    assert len(str(err)) < 2400 and str(err).startswith("`spec.kkk")

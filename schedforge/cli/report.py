@@ -75,13 +75,22 @@ def _spec_copy_disagrees(folder: Path, spec: Any) -> bool:
 def run(args: argparse.Namespace) -> int:
     """Handler: 0 on success; bad input raises InputError (exit 2)."""
     from ..report import SPEC_NAME, analyse_sweep_dir
-    from ..store import POINTS_CSV_NAME, STORE_NAME, folder_lock, read_points_csv, write_points_csv
+    from ..store import (
+        POINTS_CSV_NAME,
+        STORE_NAME,
+        check_csv_complete,
+        folder_lock,
+        write_points_csv,
+    )
 
     folder = Path(args.dir)
     if not folder.is_dir():
         raise InputError("DIR", f"must be an existing sweep folder, got {args.dir!r}")
+    has_store = (folder / STORE_NAME).exists()
+    if not has_store and not (folder / POINTS_CSV_NAME).is_file():
+        raise InputError("DIR", f"must hold {STORE_NAME} or points.csv (a sweep); none in {folder}")
     with folder_lock(folder):
-        if (folder / STORE_NAME).exists():
+        if has_store:
             spec, rows = study_from_store(folder)
             if _spec_copy_disagrees(folder, spec):
                 print(
@@ -91,13 +100,9 @@ def run(args: argparse.Namespace) -> int:
                 )
             write_points_csv(folder / POINTS_CSV_NAME, rows)
             result = analyse_sweep_dir(folder, spec, rows=rows)
-        else:
-            if not (folder / POINTS_CSV_NAME).is_file():
-                raise InputError(
-                    "DIR", f"must hold {STORE_NAME} or points.csv (a sweep); none in {folder}"
-                )
-            rows = read_points_csv(folder / POINTS_CSV_NAME)
-            result = analyse_sweep_dir(folder, rows=rows)
+        else:  # a folder copied without its store: points.csv and spec.toml
+            check_csv_complete(folder / POINTS_CSV_NAME)
+            result = analyse_sweep_dir(folder)
     print(result.table)
     print(f"wrote {result.fit_csv}")
     print(f"wrote {result.report_html}")
