@@ -370,3 +370,22 @@ def test_archive_of_an_empty_folder_does_nothing(tmp_path):
 def test_input_error_never_echoes_a_huge_value_whole():
     err = InputError("spec." + "k" * 10_000, "must be short, got " + "x" * 1_000_000)
     assert len(str(err)) < 2400 and str(err).startswith("`spec.kkk")
+
+
+def test_at_the_beta_order_limit_both_integrators_agree(write_spec):
+    # At the largest allowed k_start (167 with k_end = 2) the schedule turns within a few
+    # thousandths of the anneal; the eigenframe must still agree with the general
+    # (reference) integrator.  Beyond the limit it had returned 0.0 against 0.706.
+    import dataclasses
+
+    from schedforge.dynamics import simulate_spec
+
+    spec = load_spec(write_spec("version = 1\n"))
+    out = {}
+    for name in ("eigenframe", "general"):
+        num = dataclasses.replace(spec.numerics, integrator=name)
+        r = simulate_spec(dataclasses.replace(spec, numerics=num), tf_ns=20.0, k_start=167, k_end=2)
+        assert r.status == "ok" and r.integrator == name
+        out[name] = r.trace_distance
+    assert out["eigenframe"] == pytest.approx(out["general"], rel=1e-8)
+    assert out["general"] > 0.1  # nearly sudden: far from the steady state
