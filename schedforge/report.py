@@ -45,6 +45,7 @@ from .analysis import (
     read_points_csv,
     write_fit_csv,
 )
+from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR, dynamics_kind, law_time_scale_ns
 from .errors import InputError
 from .fileio import atomic_write_bytes, atomic_write_text
 from .plotting.scaling import (
@@ -78,6 +79,7 @@ CAUTION = (
 GAP_PLOT_MAX_DIM = 16
 #: Points along s of the gap plot.
 GAP_POINTS = 65
+_FIT_TEXT_COLS = ("family", "variant", "error_law", "verdict", "message")
 SPEC_NAME = "spec.toml"
 FIT_NAME = "fit.csv"
 REPORT_NAME = "report.html"
@@ -218,6 +220,23 @@ def _make_figures(
 
 
 # -- HTML ---------------------------------------------------------------------------
+def _law_paragraph(spec: Spec) -> str:
+    """Which error law the fits use, in words, with its sources."""
+    if dynamics_kind(spec) == "closed":
+        return (
+            "Closed (unitary) dynamics: the boundary terms of both ends count, so the error "
+            "law is tf<sup>&minus;(min(k_start, k_end)+1)</sup> (Lidar, Rezakhani and "
+            "Hamma, J. Math. Phys. 50, 102106 (2009), cited from memory; checked on a "
+            "closed qubit in the test suite). With equal orders at both ends the two terms "
+            "interfere and the local slopes oscillate."
+        )
+    return (
+        "Open (Davies) dynamics: relaxation erases the start, so the error law is "
+        "tf<sup>&minus;(k_end+1)</sup> (Avron, Fraas, Graf and Grech 2012; Campos Venuti, "
+        "Albash, Lidar and Zanardi 2016; cited from memory)."
+    )
+
+
 _CSS = """
 body { font-family: sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
 table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0 1.5em; }
@@ -274,7 +293,7 @@ def render_report(
 ) -> str:
     """The report as one self-contained HTML string (plots as base64 PNG)."""
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    fit_cols = ["family", "variant", "k_start", "k_end", "slope", "slope_stderr",
+    fit_cols = ["family", "variant", "k_start", "k_end", "error_law", "slope", "slope_stderr",
                 "expected_slope", "regime_tf_min_ns", "regime_tf_max_ns", "n_points",
                 "coefficient_fit", "coefficient_predicted", "verdict", "message"]  # fmt: skip
     pred_rows = [
@@ -283,7 +302,9 @@ def render_report(
         for k, p in sorted(predictions.items())
     ]  # fmt: skip
     point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
-                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s"]  # fmt: skip
+                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s",
+                  "warnings"]  # fmt: skip
+    warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
         "<!DOCTYPE html>",
@@ -297,8 +318,13 @@ def render_report(
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]
     parts += [
         "<h2>Scaling fits</h2>",
-        "<p>Verdict <i>agrees</i>: fitted slope within "
-        f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
+        f"<p>{_law_paragraph(spec)} Verdict <i>agrees</i> needs all of: fitted slope within "
+        f"&plusmn;{DEFAULT_SLOPE_TOL} of the law's (common practice, no source); steady "
+        f"local slopes; every regime point at tf &ge; {RELAXATION_FACTOR:g} &times; 1/gap "
+        "(final relaxation time of an open system, adiabatic time 1/min gap of H(s) of a "
+        "closed one); and, when C<sub>k</sub> is predicted, a fitted coefficient within "
+        f"{COEFFICIENT_RTOL:.0%} of it. Otherwise the verdict is <i>regime not "
+        "reached</i> with the tf range to add. The column error_law names the law used. "
         "Points at or below the numerical floor "
         f"({DEFAULT_FLOOR_FACTOR:g} &times; numerics.atol = "
         f"{DEFAULT_FLOOR_FACTOR * spec.numerics.atol:.2g}) and failed points are never "
@@ -307,7 +333,7 @@ def render_report(
         "noise). No slope is given where the regime was not reached. "
         "coefficient_fit is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf over "
         "the regime; coefficient_predicted is C<sub>k</sub> from the final generator.</p>",
-        _html_table(fit_cols, [f.row() for f in fits], ("family", "variant", "verdict", "message")),
+        _html_table(fit_cols, [f.row() for f in fits], _FIT_TEXT_COLS),
         "<h2>Predicted leading coefficients</h2>",
         "<p>C<sub>k</sub> = ||(L<sub>1</sub><sup>+</sup>)<sup>k+1</sup> "
         "d&sigma;/ds(1)||<sub>1</sub>"
@@ -327,8 +353,14 @@ def render_report(
         "<h2>Gaps along the anneal</h2>",
         _img("gap", pngs["gap"], wide=True),
         "<h2>Points</h2>",
+        f"<p>{len(warned)} of {len(rows)} points carry warnings of their own"
+        + (" (listed here; the whole table is below)" if warned else "")
+        + ".</p>",
+        _html_table(point_cols, warned, ("family", "variant", "status", "warnings"))
+        if warned
+        else "",
         f"<details><summary>{len(rows)} points</summary>",
-        _html_table(point_cols, rows, ("family", "variant", "status")),
+        _html_table(point_cols, rows, ("family", "variant", "status", "warnings")),
         "</details>",
         "<h2>Spec</h2>",
         f"<pre>{html.escape(spec_to_toml(spec))}</pre>",
@@ -395,11 +427,15 @@ def analyse_sweep_dir(
         for w in curve_warnings(system.hamiltonian.curves, k_end):
             if f"Device curves: {w}" not in warnings:
                 warnings.append(f"Device curves: {w}")
+    dynamics = dynamics_kind(system)
+    time_scale = law_time_scale_ns(system)
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,
         metric=metric,
         predicted={k: p.coefficient for k, p in predictions.items()},
+        dynamics=dynamics,
+        time_scale_ns=time_scale,
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")

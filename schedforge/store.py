@@ -53,8 +53,10 @@ __all__ = [
     "RESULT_FLOAT_COLUMNS",
     "SCHEMA_VERSION",
     "STORE_NAME",
+    "WARNING_SEPARATOR",
     "PointStore",
     "archive_sweep_dir",
+    "point_warnings",
     "read_points_csv",
     "utc_now",
     "write_points_csv",
@@ -88,7 +90,12 @@ CSV_COLUMNS: tuple[str, ...] = (
     "wall_s",
     "integrator",
     "message",
+    "warnings",
 )
+#: Columns of points.csv that an older points.csv may lack (read back as "").
+_OPTIONAL_CSV_COLUMNS = frozenset({"warnings"})
+#: Separator of a point's warnings in the ``warnings`` column.
+WARNING_SEPARATOR = " | "
 _FLOAT_COLUMNS = frozenset(("k_start", "k_end", "tf_ns", *RESULT_FLOAT_COLUMNS))
 _ROW_COLUMNS: tuple[str, ...] = (
     *COORD_COLUMNS,
@@ -348,7 +355,8 @@ class PointStore:
 
     def rows(self, keys: Iterable[str] | None = None) -> list[dict[str, Any]]:
         """Stored rows (all, or those of ``keys``), sorted by family, variant, k_start,
-        k_end, tf_ns; NULL floats come back as NaN."""
+        k_end, tf_ns; NULL floats come back as NaN; ``warnings`` is the point's own
+        warnings (:func:`point_warnings`) joined by :data:`WARNING_SEPARATOR`."""
         cur = self._conn.execute(
             "SELECT * FROM points ORDER BY family, variant, k_start, k_end, tf_ns, key"
         )
@@ -361,6 +369,7 @@ class PointStore:
             for col in _FLOAT_COLUMNS:
                 if d[col] is None:
                     d[col] = math.nan
+            d["warnings"] = WARNING_SEPARATOR.join(point_warnings(d))
             out.append(d)
         return out
 
@@ -431,6 +440,16 @@ def archive_sweep_dir(out_dir: str | os.PathLike[str]) -> Path | None:
     return dest
 
 
+def point_warnings(row: Mapping[str, Any]) -> list[str]:
+    """The point's own warnings, kept in ``stats_json["warnings"]`` ([] if none)."""
+    try:
+        stats = json.loads(row.get("stats_json") or "{}")
+    except (TypeError, ValueError):
+        return []
+    found = stats.get("warnings", []) if isinstance(stats, dict) else []
+    return [str(w) for w in found] if isinstance(found, list) else [str(found)]
+
+
 def _format_cell(col: str, value: Any) -> str:
     if col in _FLOAT_COLUMNS:
         return repr(float(value))
@@ -460,12 +479,18 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
     """
     with open(path, newline="", encoding="utf-8") as fh:
         reader = csv.DictReader(fh)
-        missing = [c for c in CSV_COLUMNS if c not in (reader.fieldnames or [])]
+        missing = [
+            c
+            for c in CSV_COLUMNS
+            if c not in (reader.fieldnames or []) and c not in _OPTIONAL_CSV_COLUMNS
+        ]
         if missing:
             raise InputError(str(path), f"must have the columns {', '.join(missing)}")
         out = []
         for lineno, rec in enumerate(reader, start=2):
             row: dict[str, Any] = dict(rec)
+            for col in _OPTIONAL_CSV_COLUMNS:
+                row.setdefault(col, "")
             for col in _FLOAT_COLUMNS & set(CSV_COLUMNS):
                 try:
                     row[col] = float(rec[col])

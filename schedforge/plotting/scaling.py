@@ -16,14 +16,20 @@ from matplotlib.figure import Figure
 from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
+from ..error_law import NO_K_END_FAMILIES
 from ..schedules import Schedule
 
 __all__ = [
+    "BOUNDED_METRICS",
     "plot_error_vs_tf",
     "plot_gap",
     "plot_local_slopes",
     "plot_schedule_derivatives",
 ]
+
+
+#: Error metrics that cannot exceed 1 (predicted lines are not drawn above it).
+BOUNDED_METRICS: frozenset[str] = frozenset({"trace_distance", "ground_infidelity"})
 
 
 def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
@@ -36,7 +42,7 @@ def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
 
 
 def _label(fit: ScalingFit) -> str:
-    k = "" if fit.family == "linear" else f" k_end={fit.k_end:g}"
+    k = "" if fit.family in NO_K_END_FAMILIES else f" k_end={fit.k_end:g}"
     v = "" if fit.variant == "ideal" else f" ({fit.variant})"
     return f"{fit.family}{k}{v}"
 
@@ -47,7 +53,8 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     Filled markers: usable points; open grey markers: points not fitted (at the
     numerical floor or failed); large ring: the fitted regime.  Solid line: the
     fitted power law over the regime; dashed: the predicted law
-    ``C_k tf^-(k+1)``; dotted: the numerical floor.
+    ``C_k tf^(expected slope)``, not drawn where it would exceed 1 for a bounded
+    metric (a trace distance is at most 1); dotted: the numerical floor.
     """
     fig, ax = _axes(ax, (5.0, 3.8))
     tf = np.asarray(fit.tf_ns)
@@ -72,15 +79,20 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
             color="C1",
             label=f"fit: slope {fit.slope:.3f}",
         )
-    if math.isfinite(fit.coefficient_predicted) and tf.size:
+    if math.isfinite(fit.coefficient_predicted) and math.isfinite(fit.expected_slope) and tf.size:
         t_line = np.geomspace(tf.min(), tf.max(), 50)
-        ax.loglog(
-            t_line,
-            fit.coefficient_predicted * t_line ** -(fit.k_end + 1.0),
-            "--",
-            color="C2",
-            label=f"predicted: C={fit.coefficient_predicted:.3g}",
-        )
+        predicted = fit.coefficient_predicted * t_line**fit.expected_slope
+        if fit.metric in BOUNDED_METRICS:
+            # a trace distance (or an infidelity) is at most 1: the law says nothing above
+            predicted = np.where(predicted <= 1.0, predicted, np.nan)
+        if np.isfinite(predicted).any():
+            ax.loglog(
+                t_line,
+                predicted,
+                "--",
+                color="C2",
+                label=f"predicted: C={fit.coefficient_predicted:.3g}",
+            )
     if fit.floor > 0:
         ax.axhline(fit.floor, color="0.4", linestyle=":", linewidth=1.0, label="numerical floor")
     ax.set_xlabel("tf (ns)")
@@ -95,7 +107,7 @@ def plot_local_slopes(fits: Sequence[ScalingFit], ax: Axes | None = None) -> Fig
     """Local slopes d log(err) / d log(tf) vs tf for several schedules.
 
     Each slope is drawn at the geometric mean of its two tf values; the
-    expected slope -(k_end + 1) of each schedule is a dashed line of the same
+    expected slope of each schedule's error law is a dashed line of the same
     colour.
     """
     fig, ax = _axes(ax, (6.0, 4.0))
