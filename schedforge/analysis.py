@@ -73,11 +73,13 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from .error_law import (
+    CLOSED,
     COEFFICIENT_RTOL,
     NO_K_END_FAMILIES,
     OPEN,
     RELAXATION_FACTOR,
     ErrorLaw,
+    end_orders,
     error_law,
 )
 from .errors import InputError
@@ -637,7 +639,15 @@ def fit_scaling(
                 f"{_fmt_tf(tf_law_min)} ns (1/gap = {tau:.3g} ns; the law cannot hold at "
                 f"shorter tf); {_suggest_tf(max(tf_law_min, float(tf[usable].max())))}"
             )
-        return not_reached(_not_reached_message(tf, err, long_enough, st, floor, regime))
+        message = _not_reached_message(tf, err, long_enough, st, floor, regime)
+        k0, k1 = end_orders(family, k_start, k_end)
+        if law.dynamics == CLOSED and law.polynomial and k0 == k1:
+            message += (
+                "; with equal flatness at both ends of a closed system the two boundary "
+                "terms interfere and the local slopes oscillate with tf, so a steady run "
+                "may never appear (k_start != k_end gives a clean law)"
+            )
+        return not_reached(message)
 
     slope, stderr, intercept = fit_power_law(tf[regime], err[regime])
     span = f"tf {_fmt_tf(tf[regime[0]])}..{_fmt_tf(tf[regime[-1]])} ns ({len(regime)} points)"

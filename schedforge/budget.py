@@ -45,7 +45,7 @@ from typing import Any
 
 import numpy as np
 
-from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR
+from .error_law import CLOSED, COEFFICIENT_RTOL, RELAXATION_FACTOR, error_law
 from .errors import InputError
 from .prediction import Prediction, predicted_coefficient, trace_norm
 from .schedules import Schedule, schedule_for_point
@@ -276,6 +276,16 @@ def plan_budget(
             gap_cache[s] = float(system.liouvillian_gap(s))
         return gap_cache[s]
 
+    if system.closed:
+        ks = sorted({k for _, k, _ in candidate_schedules(spec, families, k_values)})
+        laws = sorted({error_law(CLOSED, f, k0, k1).label for f, k0, k1 in
+                       candidate_schedules(spec, families, k_values)})  # fmt: skip
+        warnings.append(
+            f"both ends count for a closed system (error law {'; '.join(laws)}; k_start = "
+            f"{', '.join(f'{k:g}' for k in ks)}, so a flatter end alone does not help) and "
+            "no coefficient is predicted for closed dynamics: no budget can be planned; "
+            "sweep tf to measure the error instead"
+        )
     cands: list[BudgetCandidate] = []
     for family, k_start, k_end in candidate_schedules(spec, families, k_values):
         if family == "gevrey":

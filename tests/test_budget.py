@@ -136,3 +136,23 @@ def test_budget_cli(capsys):
                  "--quiet"]) == 0  # fmt: skip
     out = capsys.readouterr().out
     assert "tf_ns predicted" in out and "recommended:" in out
+
+
+def test_closed_system_budget_says_why_there_is_none():
+    """Closed dynamics: the law is tf^-(min(k_start,k_end)+1) and C_k is not predicted."""
+    from schedforge.spec import parse_spec
+
+    closed = parse_spec(
+        {
+            "version": 1,
+            "problem": {"qubits": 1, "h": [0.5], "J": []},
+            "bath": {"spectrum": "none"},
+            "initial": {"state": "ground"},
+            "sweep": {"k_end": [1, 2], "tf_ns": [10.0]},
+        },
+        ".",
+    )
+    plan = plan_budget(closed, 1e-3, confirm=2)
+    assert plan.recommended is None
+    assert all(c.simulation_status == "not simulated" for c in plan.candidates)
+    assert any("closed system" in w and "= tf^-1" in w for w in plan.warnings)

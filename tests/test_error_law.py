@@ -128,3 +128,13 @@ def test_simulate_says_when_a_result_is_below_the_numerical_floor(run_cli):
     )
     data = json.loads(out)
     assert data["below_numerical_floor"] is True and data["numerical_floor"] == 1e-11
+
+
+def test_closed_equal_ends_oscillation_is_named():
+    """Equal flatness at both ends of a closed system: the two boundary terms interfere
+    (synthetic data, |a e^(i phi(tf)) + b| / tf^2 with a turning phase; our demo data)."""
+    tfs = np.geomspace(20.0, 200.0, 9)
+    err = np.abs(1.0 + 0.6 * np.exp(1j * 2.0 * tfs)) * 1e-2 / tfs**2
+    fit = fit_scaling(tfs, err, k_end=1, k_start=1, family="beta", floor=1e-11, dynamics=CLOSED)
+    assert fit.verdict == "regime not reached"
+    assert "interfere" in fit.message
