@@ -626,6 +626,11 @@ def fit_scaling(
                 **common,
             )
 
+    if math.isinf(tau):
+        return not_reached(
+            "the final generator has no relaxation gap (1/gap infinite): the error law "
+            "cannot hold at any tf"
+        )
     if noise is None:
         noise = floor / DEFAULT_FLOOR_FACTOR
     long_enough = usable & (tf >= tf_law_min)

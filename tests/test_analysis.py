@@ -318,3 +318,9 @@ def test_real_agreement_still_agrees(driven_qubit):
     assert fit.verdict == "agrees", fit.message
     assert fit.coefficient_fit == pytest.approx(fit.coefficient_predicted, rel=0.01)
     assert "x predicted" in fit.message and "1/gap" in fit.message
+
+
+def test_no_relaxation_gap_is_never_agreement():
+    tf = np.geomspace(1e2, 1e5, 8)
+    fit = fit_scaling(tf, 1e-2 * tf**-2.0, k_end=1, family="beta", time_scale_ns=math.inf)
+    assert fit.verdict == "regime not reached" and "no relaxation gap" in fit.message
