@@ -34,7 +34,9 @@ from .spec_model import (
     BathSpec,
     DeviceSpec,
     InitialSpec,
+    NoiseSpec,
     NumericsSpec,
+    ProblemFamilySpec,
     ProblemSpec,
     ScheduleSpec,
     Spec,
@@ -71,6 +73,7 @@ _SECTIONS: dict[str, type] = {
     "numerics": NumericsSpec,
     "sweep": SweepSpec,
     "waveform": WaveformSpec,
+    "noise": NoiseSpec,
 }
 _TOP_KEYS = ("version", *_SECTIONS)
 
@@ -472,6 +475,81 @@ def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
     return WaveformSpec(**kw)
 
 
+# -- [noise]: control errors (issue 17) -------------------------------------------
+#: Largest number of noise draws (guards against typos).
+MAX_NOISE_DRAWS = 1_000_000
+#: Largest size of a generated problem (2^n states are enumerated).
+MAX_FAMILY_QUBITS = 22
+
+
+def _noise_terms(value: Any, path: str) -> tuple[str, ...]:
+    from .control_noise import NOISE_TERMS
+
+    items = _array(value, path)
+    out = tuple(_string(v, f"{path}[{i}]", NOISE_TERMS) for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _noise_levels(value: Any, path: str) -> tuple[float, ...]:
+    items = _array(value, path)
+    out = tuple(_number(v, f"{path}[{i}]", ge=0) for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _family_sizes(value: Any, path: str) -> tuple[int, ...]:
+    items = _array(value, path, nonempty=True)
+    out = tuple(
+        _integer(v, f"{path}[{i}]", ge=2, le=MAX_FAMILY_QUBITS) for i, v in enumerate(items)
+    )
+    _no_repeats(out, path)
+    return out
+
+
+def _problem_family(value: Any, path: str) -> ProblemFamilySpec:
+    from .problem_families import COUPLING_KINDS, FIELD_KINDS, GRAPHS
+
+    table = _table(value, path)
+    _check_keys(table, [f.name for f in dataclasses.fields(ProblemFamilySpec)], path)
+    readers: dict[str, Callable[[Any, str], Any]] = {
+        "graph": lambda v, p: _string(v, p, GRAPHS),
+        "couplings": lambda v, p: _string(v, p, COUPLING_KINDS),
+        "fields": lambda v, p: _string(v, p, FIELD_KINDS),
+        "field_scale": lambda v, p: _number(v, p, ge=0),
+        "sizes": _family_sizes,
+        "instances": lambda v, p: _integer(v, p, ge=1, le=1000),
+        "seed": lambda v, p: _integer(v, p, ge=0),
+    }
+    fam = ProblemFamilySpec(**{k: readers[k](v, f"{path}.{k}") for k, v in table.items()})
+    if fam.graph == "ring":
+        for i, n in enumerate(fam.sizes):
+            if n < 3:
+                raise InputError(f"{path}.sizes[{i}]", f"must be >= 3 for a ring, got {n}")
+    return fam
+
+
+def _noise(data: dict[str, Any]) -> NoiseSpec | None:
+    if "noise" not in data:
+        return None
+    kw = _section(
+        data,
+        "noise",
+        {
+            "level": lambda v, p: _number(v, p, ge=0),
+            "terms": _noise_terms,
+            "amplitude_level": lambda v, p: _number(v, p, ge=0, lt=1),
+            "draws": lambda v, p: _integer(v, p, ge=1, le=MAX_NOISE_DRAWS),
+            "seed": lambda v, p: _integer(v, p, ge=0),
+            "target": lambda v, p: _number(v, p, gt=0, le=1),
+            "confidence": lambda v, p: _number(v, p, gt=0, lt=1),
+            "levels": _noise_levels,
+            "problems": _problem_family,
+        },
+    )
+    return NoiseSpec(**kw)
+
+
 def _check_schedules(spec: Spec) -> None:
     """Build the spec's schedule, and every sweep variant, to apply each family's own rules."""
     from .schedules import schedule_from_spec
@@ -544,6 +622,7 @@ def parse_spec(
         numerics=_numerics(data),
         sweep=_sweep(data),
         waveform=_waveform(data),
+        noise=_noise(data),
         source=source,
     )
     _check_schedules(spec)
@@ -670,4 +749,23 @@ atol = 1e-14
 # max_slope_per_ns = 0.01
 # breakpoints = 32
 # breakpoint_tolerance = 1e-4
+
+# Control errors on the programmed h_i, J_ij (schedforge precision / noise-sweep).
+# [noise]
+# level = 0.02                 # std of each coefficient's error / largest |h_i|, |J_ij|
+# terms = ["h", "J"]           # which coefficients carry errors
+# amplitude_level = 0.0        # relative std of the amplitude of A(s) and of B(s) (dynamics)
+# draws = 200
+# seed = 0
+# target = 0.05                # largest acceptable probability that the ground state changes
+# confidence = 0.95            # of the Wilson intervals
+# levels = []                  # levels to tabulate; default: a grid up to the crossing
+# [noise.problems]             # optional: generated problems, fragility against size
+# graph = "ring"               # chain, ring, grid or complete
+# couplings = "sign"           # sign (+-1) or gaussian
+# fields = "none"              # none, sign or gaussian (times field_scale)
+# field_scale = 1.0
+# sizes = [4, 8, 12, 16]       # qubits (2..{MAX_FAMILY_QUBITS}); every state is enumerated
+# instances = 3
+# seed = 0
 """

@@ -20,7 +20,9 @@ __all__ = [
     "BathSpec",
     "DeviceSpec",
     "InitialSpec",
+    "NoiseSpec",
     "NumericsSpec",
+    "ProblemFamilySpec",
     "ProblemSpec",
     "ScheduleSpec",
     "Spec",
@@ -130,6 +132,50 @@ class WaveformSpec:
 
 
 @dataclass(frozen=True)
+class ProblemFamilySpec:
+    """Problems generated from a seed, for the ground state's fragility against size.
+
+    ``graph`` is ``chain``, ``ring``, ``grid`` or ``complete``; ``couplings`` is
+    ``sign`` (J = +-1) or ``gaussian`` (J from N(0, 1)); ``fields`` is ``none``,
+    ``sign`` or ``gaussian`` (times ``field_scale``).  Each size gets ``instances``
+    problems (see :func:`schedforge.problem_families.make_problem`).
+    """
+
+    graph: str = "ring"
+    couplings: str = "sign"
+    fields: str = "none"
+    field_scale: float = 1.0
+    sizes: tuple[int, ...] = (4, 8, 12, 16)
+    instances: int = 3
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class NoiseSpec:
+    """Control errors on the programmed problem (the ``[noise]`` section).
+
+    ``level`` is the standard deviation of the Gaussian error of each programmed
+    h_i and J_ij (those named in ``terms``) as a fraction of the problem's largest
+    |h_i|, |J_ij|; ``amplitude_level`` the relative standard deviation of one
+    amplitude error of A(s) and one of B(s) per draw (dynamics only).  ``draws``
+    draws come from ``seed``; ``target`` is the largest acceptable probability that
+    the ground state changes, ``confidence`` the level of the Wilson intervals;
+    ``levels`` (optional) the levels at which to tabulate the probability.
+    Not part of :meth:`Spec.physics_dict`: it does not change a noiseless sweep.
+    """
+
+    level: float = 0.02
+    terms: tuple[str, ...] = ("h", "J")
+    amplitude_level: float = 0.0
+    draws: int = 200
+    seed: int = 0
+    target: float = 0.05
+    confidence: float = 0.95
+    levels: tuple[float, ...] = ()
+    problems: ProblemFamilySpec | None = None
+
+
+@dataclass(frozen=True)
 class Spec:
     """A whole study.  ``source`` is the file it came from (not part of the physics)."""
 
@@ -142,6 +188,7 @@ class Spec:
     numerics: NumericsSpec = field(default_factory=NumericsSpec)
     sweep: SweepSpec | None = None
     waveform: WaveformSpec | None = None
+    noise: NoiseSpec | None = None
     source: str | None = field(default=None, compare=False)
 
     def physics_dict(self) -> dict[str, Any]:

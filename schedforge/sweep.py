@@ -67,6 +67,7 @@ from .store import (
 __all__ = [
     "INPUT_ERROR",
     "VARIANTS",
+    "PointPlan",
     "SweepOutcome",
     "SweepPoint",
     "format_summary",
@@ -329,6 +330,33 @@ class SweepOutcome:
         return self.n_done == self.n_points
 
 
+@dataclass(frozen=True)
+class PointPlan:
+    """Points other than the spec's grid, run by :func:`run_sweep` with their own task.
+
+    Used by studies that run many variants of one spec (e.g. the noise ensembles of
+    :mod:`schedforge.noise_ensemble`) through the same store, executors and progress.
+
+    Attributes
+    ----------
+    points : sequence
+        Hashable objects with ``family``, ``k_start``, ``k_end``, ``tf_ns``,
+        ``canonical()`` (text for the point key) and ``label()``.
+    task : callable
+        Picklable, module-level ``task(point) -> row`` (a store row, as
+        :func:`run_point` returns).
+    physics_hash : str
+        Keys the store (instead of ``spec.physics_hash()``).
+    physics : dict
+        Saved in the store's meta data.
+    """
+
+    points: Sequence[Any]
+    task: Callable[[Any], dict[str, Any]]
+    physics_hash: str
+    physics: dict[str, Any]
+
+
 def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
     """Check in this process what would fail identically at every point.
 
@@ -365,6 +393,7 @@ def run_sweep(
     retry_failed: bool = False,
     progress_stream: Any = None,
     after_point: Callable[[SweepPoint, dict[str, Any]], None] | None = None,
+    plan: PointPlan | None = None,
 ) -> SweepOutcome:
     """Compute every point of the spec's grid that is not yet stored in ``out_dir``.
 
@@ -390,6 +419,8 @@ def run_sweep(
         Where progress goes.
     after_point : callable, optional
         Called as ``after_point(point, row)`` after each point is committed.
+    plan : PointPlan, optional
+        Run these points with their task instead of the spec's grid.
 
     Returns
     -------
@@ -408,15 +439,16 @@ def run_sweep(
     folder = Path(out_dir)
     if folder.exists() and not folder.is_dir():
         raise InputError("--out", f"must be a directory, {folder} is a file")
-    points = sweep_points(spec)
+    points = sweep_points(spec) if plan is None else list(plan.points)
     warnings = _preflight(spec, points)
     folder.mkdir(parents=True, exist_ok=True)
     archived = archive_sweep_dir(folder) if fresh else None
-    physics_hash = spec.physics_hash()
+    physics_hash = spec.physics_hash() if plan is None else plan.physics_hash
+    physics = spec.physics_dict() if plan is None else plan.physics
     keys = {p: point_key(physics_hash, p) for p in points}
     spec_json = json.dumps(dataclasses.asdict(spec), sort_keys=True, default=_json_default)
     lost: list[tuple[SweepPoint, str]] = []
-    with PointStore(folder / STORE_NAME, physics_hash, physics=spec.physics_dict()) as store:
+    with PointStore(folder / STORE_NAME, physics_hash, physics=physics) as store:
         if retry_failed:
             store.forget(r["key"] for r in store.rows(keys.values()) if r["status"] != "ok")
         done_keys = store.keys()
@@ -445,7 +477,11 @@ def run_sweep(
         state = "interrupted"
         n_computed = 0
         try:
-            task = functools.partial(run_point, spec, common_warnings=tuple(warnings))
+            task = (
+                functools.partial(run_point, spec, common_warnings=tuple(warnings))
+                if plan is None
+                else plan.task
+            )
             for point, row in ex.map_unordered(task, pending):
                 if isinstance(row, TaskLost):
                     lost.append((point, row.reason))
