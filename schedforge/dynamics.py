@@ -742,6 +742,10 @@ def simulate_spec(
         if val is not None
     }
     sched_spec = replace(spec.schedule, **changes)
+    from .limits import check_memory, check_run_cost  # out of reach: refused with the figure
+
+    check_memory(spec.problem.qubits)
+    check_run_cost(spec, sched_spec.tf_ns, spec.numerics.integrator, realized=variant == "realized")
     system = System.from_spec(spec)
     schedule = schedule_from_spec(sched_spec)
     if variant == "realized":

@@ -37,11 +37,26 @@ class DeviceSpec:
 
     ``curves`` is ``"linear"`` (A = A0 (1 - s), B = B0 s) or the path of a CSV
     file with columns ``s, A_ghz, B_ghz`` (resolved to an absolute path).
+    ``curves_sha256`` is the SHA-256 (hex) of that file's bytes, recorded when
+    the spec is read: the study is what the file held then, wherever it lies
+    (the path is not part of the physics), and a file changed since is refused
+    when the curves are built.
     """
 
     curves: str = "linear"
     A0_ghz: float = 3.5
     B0_ghz: float = 2.5
+    curves_sha256: str | None = None
+
+    def curves_digest(self) -> str | None:
+        """SHA-256 of the curves file (``None`` for linear curves); read if not recorded."""
+        if self.curves == "linear":
+            return None
+        if self.curves_sha256 is not None:
+            return self.curves_sha256
+        from .device_table import file_sha256
+
+        return file_sha256(self.curves)
 
 
 @dataclass(frozen=True)
@@ -197,11 +212,16 @@ class Spec:
         It excludes the schedule's own coordinates (family, k, tf), which a sweep
         varies, and the sweep grid itself; it includes the schedule's shape
         parameters (``tail``, ``points``), the integrator settings and the waveform.
+        A curves CSV enters through the SHA-256 of its contents, not its path.
         """
         sched = self.schedule
+        device = asdict(self.device)
+        del device["curves_sha256"]  # absent before content hashing: old hashes unchanged
+        if self.device.curves != "linear":  # what the file holds, not where it lies
+            device["curves"] = f"sha256:{self.device.curves_digest()}"
         return {
             "version": self.version,
-            "device": asdict(self.device),
+            "device": device,
             "problem": asdict(self.problem),
             "bath": asdict(self.bath),
             "schedule_shape": {"tail": sched.tail, "points": sched.points},

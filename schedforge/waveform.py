@@ -1007,10 +1007,11 @@ def played_samples(realized: RealizedWaveform, curves: Any) -> Any:
         "levels": "jump points of the quantized waveform (held between points)",
         "analog": "end points only (no waveform limits given)",
     }[realized.mode]
+    rate = realized.schedule.model.get("sample_rate_gsps")  # absent for breakpoints
     grid = {
         "breakpoints": f"{t.size} breakpoints",
         "samples": "the device's sample grid"
-        + (f" ({realized.schedule.model['sample_rate_gsps']:g} GS/s)" if t.size > 2 else ""),
+        + (f" ({rate:g} GS/s)" if t.size > 2 and rate is not None else ""),
         "levels": f"{t.size} jump points",
         "analog": "end points",
     }[realized.mode]

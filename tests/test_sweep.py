@@ -321,7 +321,8 @@ def test_sigkill_then_rerun_completes_without_loss_or_repeat(tmp_path, write_spe
     per_run = dict(con.execute("SELECT run_id, COUNT(*) FROM points GROUP BY run_id"))
     runs = con.execute("SELECT run_id, state, n_pending FROM runs ORDER BY run_id").fetchall()
     con.close()
-    assert runs[0][1] == "running"  # the killed run never got to record its end
+    # The killed run never recorded its end; the rerun, holding the lock, marks it.
+    assert runs[0][1] == "abandoned"
     assert runs[1][1:] == ("complete", total - n_first)
     assert per_run == {1: n_first, 2: total - n_first}  # nothing computed twice
 

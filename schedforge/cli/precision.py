@@ -134,7 +134,8 @@ def format_precision(summary: dict[str, Any]) -> str:
         f"intended ground states ({summary['degeneracy']}; bit 0 = Z +1, qubit 0 first): {shown}",
         f"rule: {summary['rule']}",
         f"noise: Gaussian on {', '.join(noise['terms']) or 'nothing'}, {noise['draws']} draws, "
-        f"seed {noise['seed']} (same draws at every level)",
+        f"seed {noise['seed']} (same draws at every level)"
+        + ("" if summary.get("noise_in_spec", True) else "; defaults: the spec has no [noise]"),
         f"at level {at['level']:g}: ground state changed in {at['changed']} of {at['draws']} "
         f"draws, P = {_num(at['probability'])} ({conf} Wilson interval "
         f"{_num(at['lower'])} .. {_num(at['upper'])})",
@@ -241,6 +242,7 @@ def run(args: argparse.Namespace) -> int:
     precision = problem_precision(IsingProblem.from_spec(spec.problem), noise)
     rows = size_growth(noise, say) if noise.problems is not None else []
     summary = _summary(precision, noise, summarize_sizes(rows) if rows else None)
+    summary["noise_in_spec"] = spec.noise is not None
     if args.json:
         print(json.dumps(_clean(summary), indent=2, sort_keys=True))
     else:
