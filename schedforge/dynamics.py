@@ -42,6 +42,7 @@ from threadpoolctl import threadpool_limits
 from .bath import Bath, make_bath, steady_state_advice
 from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eigen_decomposition
 from .device import make_device_curves
+from .error_law import relaxation_warning
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
 from .schedules import Schedule, schedule_from_spec
@@ -650,6 +651,8 @@ def simulate(
             raise InputError(name, f"must be a finite number > 0, got {val!r}")
     start = time.perf_counter()
     warnings = tuple(system.preflight())
+    short = relaxation_warning(system, float(tf_ns))  # the error law cannot hold there
+    warnings += (short,) if short else ()
     if getattr(schedule, "jumps", False) and integrator != HELD_INTEGRATOR:
         # s(t) jumps (an unfiltered hold): only the exact piecewise-constant propagator
         # handles it; the others follow a continuous s(t) and would miss the jumps

@@ -45,6 +45,7 @@ from .analysis import (
     read_points_csv,
     write_fit_csv,
 )
+from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR, dynamics_kind, law_time_scale_ns
 from .errors import InputError
 from .fileio import atomic_write_bytes, atomic_write_text
 from .plotting.scaling import (
@@ -79,6 +80,7 @@ CAUTION = (
 GAP_PLOT_MAX_DIM = 16
 #: Points along s of the gap plot.
 GAP_POINTS = 65
+_FIT_TEXT_COLS = ("family", "variant", "error_law", "verdict", "message")
 SPEC_NAME = "spec.toml"
 FIT_NAME = "fit.csv"
 REPORT_NAME = "report.html"
@@ -219,6 +221,23 @@ def _make_figures(
 
 
 # -- HTML ---------------------------------------------------------------------------
+def _law_paragraph(spec: Spec) -> str:
+    """Which error law the fits use, in words, with its sources."""
+    if dynamics_kind(spec) == "closed":
+        return (
+            "Closed (unitary) dynamics: the boundary terms of both ends count, so the error "
+            "law is tf<sup>&minus;(min(k_start, k_end)+1)</sup> (Lidar, Rezakhani and "
+            "Hamma, J. Math. Phys. 50, 102106 (2009), cited from memory; checked on a "
+            "closed qubit in the test suite). With equal orders at both ends the two terms "
+            "interfere and the local slopes oscillate."
+        )
+    return (
+        "Open (Davies) dynamics: relaxation erases the start, so the error law is "
+        "tf<sup>&minus;(k_end+1)</sup> (Avron, Fraas, Graf and Grech 2012; Campos Venuti, "
+        "Albash, Lidar and Zanardi 2016; cited from memory)."
+    )
+
+
 _CSS = """
 body { font-family: sans-serif; max-width: 1200px; margin: 2em auto; padding: 0 1em;
        color: #222; line-height: 1.4; }
@@ -229,6 +248,7 @@ th { background: #eee; font-weight: 600; text-align: center; }
 td.t { text-align: left; }
 td.msg { text-align: left; min-width: 13em; max-width: 36em; }
 td.n { white-space: nowrap; }
+tr.detail td { text-align: left; color: #444; border-top: none; padding-left: 2em; }
 .caution { border: 2px solid #c33; background: #fff3f3; padding: 0.8em 1em; }
 .summary { font-size: 1.05em; }
 .plots { display: flex; flex-wrap: wrap; gap: 1%; }
@@ -247,8 +267,9 @@ _HEADERS = {
     "expected_slope": "expected slope",
     "regime_tf_ns": "regime tf (ns)",
     "n_points": "points in regime",
-    "coefficient_fit": "C<sub>k</sub> fitted (ns<sup>k+1</sup>)",
-    "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>k+1</sup>)",
+    "error_law": "error law",
+    "coefficient_fit": "C<sub>k</sub> fitted (ns<sup>p</sup>)",
+    "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>p</sup>)",
     "C_k": "C<sub>k</sub>",
     "tf_ns": "tf (ns)",
     "trace_distance": "trace distance",
@@ -256,7 +277,7 @@ _HEADERS = {
     "excess_energy_ghz": "excess energy (GHz)",
     "wall_s": "wall time (s)",
 }
-_MESSAGE_COLUMNS = ("message",)
+_MESSAGE_COLUMNS = ("message", "warnings")
 
 
 def _fmt(v: Any) -> str:
@@ -266,8 +287,15 @@ def _fmt(v: Any) -> str:
 
 
 def _html_table(
-    columns: Sequence[str], rows: Sequence[Mapping[str, Any]], text_cols: Sequence[str] = ()
+    columns: Sequence[str],
+    rows: Sequence[Mapping[str, Any]],
+    text_cols: Sequence[str] = (),
+    *,
+    detail: str | None = None,
 ) -> str:
+    """A table in a sideways-scrolling box; ``detail`` (a long text column) goes on a
+    full-width line under each row instead of a narrow column."""
+    columns = [c for c in columns if c != detail]
     head = "".join(
         f'<th title="{html.escape(c)}">{_HEADERS.get(c, html.escape(c))}</th>' for c in columns
     )
@@ -286,6 +314,11 @@ def _html_table(
                 cls = ' class="n"'
             cells.append(f"<td{cls}>{_fmt(val)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
+        if detail is not None and r.get(detail):
+            out.append(
+                f'<tr class="detail"><td colspan="{len(columns)}">'
+                f"{_HEADERS.get(detail, html.escape(detail))}: {_fmt(r[detail])}</td></tr>"
+            )
     out.append("</table></div>")
     return "\n".join(out)
 
@@ -330,7 +363,7 @@ def render_report(
 ) -> str:
     """The report as one self-contained HTML string (plots as base64 PNG)."""
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    fit_cols = ["family", "variant", "k_start", "k_end", "slope", "slope_stderr",
+    fit_cols = ["family", "variant", "k_start", "k_end", "error_law", "slope", "slope_stderr",
                 "expected_slope", "regime_tf_ns", "n_points",
                 "coefficient_fit", "coefficient_predicted", "verdict", "message"]  # fmt: skip
     fit_rows = [_fit_display_row(f.row()) for f in fits]
@@ -340,7 +373,9 @@ def render_report(
         for k, p in sorted(predictions.items())
     ]  # fmt: skip
     point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
-                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s"]  # fmt: skip
+                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s",
+                  "warnings"]  # fmt: skip
+    warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
         "<!DOCTYPE html>",
@@ -363,23 +398,30 @@ def render_report(
     agrees = any(f.verdict == "agrees" for f in fits)
     parts += [
         "<h2>Scaling fits</h2>",
-        "<p>"
+        f"<p>{_law_paragraph(spec)} "
         + (
-            "Verdict <i>agrees</i>: fitted slope within "
+            "Verdict <i>agrees</i> needs all of: "
             if agrees
-            else "No fit agrees with its law; a fit would agree with its slope within "
+            else "No fit agrees with its law; the verdict <i>agrees</i> would need all of: "
         )
-        + f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
+        + f"fitted slope within &plusmn;{DEFAULT_SLOPE_TOL} of the law's (common practice, "
+        "no source); steady "
+        f"local slopes; every regime point at tf &ge; {RELAXATION_FACTOR:g} &times; 1/gap "
+        "(final relaxation time of an open system, adiabatic time 1/min gap of H(s) of a "
+        "closed one); and, when C<sub>k</sub> is predicted, a fitted coefficient within "
+        f"{COEFFICIENT_RTOL:.0%} of it. Otherwise the verdict is <i>regime not "
+        "reached</i> with the tf range to add. The column error law names the law used. "
         "Points at or below the numerical floor "
         f"({DEFAULT_FLOOR_FACTOR:g} &times; numerics.atol = "
         f"{DEFAULT_FLOOR_FACTOR * spec.numerics.atol:.2g}) and failed points are never "
         "fitted; the regime is the longest run of points at the large-tf end whose local "
         f"slopes lie within a band of width {DEFAULT_REGIME_TOL} (widened by each slope's "
         "noise). No slope is given where the regime was not reached. "
-        "C<sub>k</sub> fitted is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf "
-        "over the regime; C<sub>k</sub> predicted is from the final generator; both in "
-        "ns<sup>k+1</sup> (err = C<sub>k</sub> / tf<sup>k+1</sup>, tf in ns).</p>",
-        _html_table(fit_cols, fit_rows, ("family", "variant", "verdict", "regime_tf_ns")),
+        "C<sub>k</sub> fitted is the intercept of err&middot;tf<sup>p</sup> against 1/tf "
+        "over the regime, with p = &minus;(expected slope) the law's exponent; C<sub>k</sub> "
+        "predicted is from the final generator; both in ns<sup>p</sup> (err = C<sub>k</sub> "
+        "/ tf<sup>p</sup>, tf in ns).</p>",
+        _html_table(fit_cols, fit_rows, (*_FIT_TEXT_COLS, "regime_tf_ns"), detail="message"),
         "<h2>Predicted leading coefficients</h2>",
         "<p>C<sub>k</sub> = ||(L<sub>1</sub><sup>+</sup>)<sup>k+1</sup> "
         "d&sigma;/ds(1)||<sub>1</sub>"
@@ -399,8 +441,14 @@ def render_report(
         "<h2>Gaps along the anneal</h2>",
         _img("gap", pngs["gap"], wide=True),
         "<h2>Points</h2>",
+        f"<p>{len(warned)} of {len(rows)} points carry warnings of their own"
+        + (" (listed here; the whole table is below)" if warned else "")
+        + ".</p>",
+        _html_table(point_cols, warned, ("family", "variant", "status", "warnings"))
+        if warned
+        else "",
         f"<details><summary>{html.escape(_points_summary(rows))}</summary>",
-        _html_table(point_cols, rows, ("family", "variant", "status")),
+        _html_table(point_cols, rows, ("family", "variant", "status", "warnings")),
         "</details>",
         "<h2>Spec</h2>",
         f"<pre>{html.escape(spec_to_toml(spec))}</pre>",
@@ -467,11 +515,15 @@ def analyse_sweep_dir(
         for w in curve_warnings(system.hamiltonian.curves, k_end):
             if f"Device curves: {w}" not in warnings:
                 warnings.append(f"Device curves: {w}")
+    dynamics = dynamics_kind(system)
+    time_scale = law_time_scale_ns(system)
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,
         metric=metric,
         predicted={k: p.coefficient for k, p in predictions.items()},
+        dynamics=dynamics,
+        time_scale_ns=time_scale,
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")

@@ -65,11 +65,13 @@ __all__ = [
     "SCHEMA_VERSION",
     "STORE_NAME",
     "STUDY_OUTPUTS",
+    "WARNING_SEPARATOR",
     "PointStore",
     "archive_outputs",
     "archive_sweep_dir",
     "check_csv_complete",
     "folder_lock",
+    "point_warnings",
     "read_points_csv",
     "utc_now",
     "write_points_csv",
@@ -114,7 +116,12 @@ CSV_COLUMNS: tuple[str, ...] = (
     "wall_s",
     "integrator",
     "message",
+    "warnings",
 )
+#: Columns of points.csv that an older points.csv may lack (read back as "").
+_OPTIONAL_CSV_COLUMNS = frozenset({"warnings"})
+#: Separator of a point's warnings in the ``warnings`` column.
+WARNING_SEPARATOR = " | "
 _FLOAT_COLUMNS = frozenset(("k_start", "k_end", "tf_ns", *RESULT_FLOAT_COLUMNS))
 _ROW_COLUMNS: tuple[str, ...] = (
     *COORD_COLUMNS,
@@ -486,7 +493,8 @@ class PointStore:
 
     def rows(self, keys: Iterable[str] | None = None) -> list[dict[str, Any]]:
         """Stored rows (all, or those of ``keys``), sorted by family, variant, k_start,
-        k_end, tf_ns; NULL floats come back as NaN."""
+        k_end, tf_ns; NULL floats come back as NaN; ``warnings`` is the point's own
+        warnings (:func:`point_warnings`) joined by :data:`WARNING_SEPARATOR`."""
         cur = self._conn.execute(
             "SELECT * FROM points ORDER BY family, variant, k_start, k_end, tf_ns, key"
         )
@@ -499,6 +507,7 @@ class PointStore:
             for col in _FLOAT_COLUMNS:
                 if d[col] is None:
                     d[col] = math.nan
+            d["warnings"] = WARNING_SEPARATOR.join(point_warnings(d))
             out.append(d)
         return out
 
@@ -616,6 +625,16 @@ def archive_sweep_dir(out_dir: str | os.PathLike[str]) -> Path | None:
     return dest
 
 
+def point_warnings(row: Mapping[str, Any]) -> list[str]:
+    """The point's own warnings, kept in ``stats_json["warnings"]`` ([] if none)."""
+    try:
+        stats = json.loads(row.get("stats_json") or "{}")
+    except (TypeError, ValueError):
+        return []
+    found = stats.get("warnings", []) if isinstance(stats, dict) else []
+    return [str(w) for w in found] if isinstance(found, list) else [str(found)]
+
+
 def _format_cell(col: str, value: Any) -> str:
     if col in _FLOAT_COLUMNS:
         return repr(float(value))
@@ -647,7 +666,11 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
     """
     with open(path, newline="", encoding="utf-8-sig") as fh:
         reader = csv.DictReader(fh, restkey="\0extra")
-        missing = [c for c in CSV_COLUMNS if c not in (reader.fieldnames or [])]
+        missing = [
+            c
+            for c in CSV_COLUMNS
+            if c not in (reader.fieldnames or []) and c not in _OPTIONAL_CSV_COLUMNS
+        ]
         if missing:
             raise InputError(str(path), f"must have the columns {', '.join(missing)}")
         width = len(reader.fieldnames or [])
@@ -663,6 +686,8 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
                     "damaged (rebuild it from the store: rerun the sweep command)",
                 )
             row: dict[str, Any] = dict(rec)
+            for col in _OPTIONAL_CSV_COLUMNS:
+                row.setdefault(col, "")
             for col in _FLOAT_COLUMNS & set(CSV_COLUMNS):
                 try:
                     row[col] = float(rec[col])

@@ -13,6 +13,13 @@ crash computes only what is missing.
 
 For the ``linear`` family ``k_start`` and ``k_end`` are meaningless (nothing is
 flat): it contributes one point per ``tf_ns``, recorded with ``k_start = k_end = 0``.
+A ``gevrey`` schedule is flat to every order at the end whatever ``k_end`` says: it
+also contributes one point per ``tf_ns`` (per ``k_start``), recorded with ``k_end = 0``.
+
+Each stored point keeps its own warnings (those of its simulation that are not
+already warnings of the whole sweep, such as a tf short against the final
+relaxation time) in ``stats_json["warnings"]``; they reach ``points.csv`` (column
+``warnings``), the report and the console summary.
 """
 
 from __future__ import annotations
@@ -32,6 +39,7 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
+from .error_law import NO_K_END_FAMILIES
 from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .progress import ProgressReporter
@@ -49,6 +57,7 @@ from .spec_model import (
 from .store import (
     POINTS_CSV_NAME,
     STORE_NAME,
+    WARNING_SEPARATOR,
     PointStore,
     archive_sweep_dir,
     utc_now,
@@ -128,8 +137,9 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
     Families default to ``[spec.schedule.family]``, k_end to ``[spec.schedule.k_end]``
     and tf_ns to ``[spec.schedule.tf_ns]`` (so a spec without ``[sweep]`` gives one
     point); k_start is ``spec.schedule.k_start``.  ``linear`` gives one point per
-    tf with ``k_start = k_end = 0``.  With a ``[waveform]`` section every point
-    has a ``"realized"`` twin.
+    tf with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its
+    end is flat to every order whatever k_end).  With a ``[waveform]`` section every
+    point has a ``"realized"`` twin.
 
     Parameters
     ----------
@@ -154,6 +164,8 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
                 for variant in variants:
                     if family in _NO_K_FAMILIES:
                         points.add(SweepPoint(family, 0.0, 0.0, tf, variant=variant))
+                    elif family in NO_K_END_FAMILIES:  # k_end has no effect: once per tf
+                        points.add(SweepPoint(family, sched.k_start, 0.0, tf, variant=variant))
                     else:
                         points.add(SweepPoint(family, sched.k_start, k_end, tf, variant=variant))
     return sorted(points)
@@ -191,7 +203,9 @@ def _played_note(pending: Sequence[SweepPoint]) -> str:
     )
 
 
-def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
+def run_point(
+    spec: Spec, point: SweepPoint, *, common_warnings: Sequence[str] = ()
+) -> dict[str, Any]:
     """Simulate one point; return its store row (a plain, picklable dict).
 
     A module-level pure function, so executors can ship it to worker processes.
@@ -207,14 +221,18 @@ def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
     ----------
     spec : Spec
     point : SweepPoint
+    common_warnings : sequence of str
+        Warnings of the whole sweep (the system's pre-flight), left out of the
+        point's own ``warnings``.
 
     Returns
     -------
     dict
         Coordinates, ``trace_distance``, ``ground_infidelity``,
         ``excess_energy_ghz``, ``status``, ``message``, ``integrator``,
-        ``stats_json``, ``wall_s``, ``schedforge_version``, ``computed_at``,
-        ``worker``.
+        ``stats_json`` (with the point's own warnings under ``"warnings"``),
+        ``warnings`` (the same, joined by :data:`WARNING_SEPARATOR`), ``wall_s``,
+        ``schedforge_version``, ``computed_at``, ``worker``.
     """
     row: dict[str, Any] = {
         "family": point.family,
@@ -242,9 +260,12 @@ def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
         row["status"] = str(result.status)
         row["message"] = str(result.message or "")
         row["integrator"] = str(result.integrator or "")
-        row["stats_json"] = json.dumps(
-            dict(result.stats or {}), sort_keys=True, default=_json_default
-        )
+        own = [w for w in result.warnings if w not in set(common_warnings)]
+        stats = dict(result.stats or {})
+        if own:
+            stats["warnings"] = own
+        row["stats_json"] = json.dumps(stats, sort_keys=True, default=_json_default)
+        row["warnings"] = WARNING_SEPARATOR.join(own)
     except InputError as exc:  # bad input: not a result; run_sweep stops and reports it
         row.update(_nan_result(time.perf_counter() - t0))
         row.update(status=INPUT_ERROR, message=exc.rule, input_field=exc.field)
@@ -468,7 +489,11 @@ def run_sweep(
         state = "interrupted"
         n_computed = 0
         try:
-            task = functools.partial(run_point, spec) if plan is None else plan.task
+            task = (
+                functools.partial(run_point, spec, common_warnings=tuple(warnings))
+                if plan is None
+                else plan.task
+            )
             for point, row in ex.map_unordered(task, pending):
                 if isinstance(row, TaskLost):
                     lost.append((point, row.reason))
@@ -577,17 +602,36 @@ def _num(value: float, fmt: str = ".3g") -> str:
     return format(value, fmt) if math.isfinite(value) else "-"
 
 
-def format_summary(outcome: SweepOutcome) -> str:
-    """Plain-text summary: one line per schedule, then failed and lost points.
+def _point_warning_lines(rows: Sequence[dict[str, Any]], limit: int = 5) -> list[str]:
+    """Count of points with warnings of their own, and the first few of them."""
+    warned = [r for r in rows if r.get("warnings")]
+    if not warned:
+        return []
+    out = [
+        f"{len(warned)} point(s) carry warnings of their own (column `warnings` of "
+        f"{POINTS_CSV_NAME}):"
+    ]
+    for r in warned[:limit]:
+        p = SweepPoint(r["family"], r["k_start"], r["k_end"], r["tf_ns"], variant=r["variant"])
+        out.append(f"  {p.label()}: {r['warnings']}")
+    if len(warned) > limit:
+        out.append(f"  ... and {len(warned) - limit} more")
+    return out
 
-    Error figures are shown only from points whose status is "ok".
+
+def format_summary(outcome: SweepOutcome) -> str:
+    """Plain-text summary: one line per schedule, then warnings, failed and lost points.
+
+    Error figures are shown only from points whose status is "ok"; ``warned``
+    counts the points with warnings of their own, the first of which are listed.
     """
     groups: dict[tuple[str, str, float, float], list[dict[str, Any]]] = {}
     for r in outcome.rows:
         groups.setdefault((r["family"], r["variant"], r["k_start"], r["k_end"]), []).append(r)
     head = (
         f"{'family':<10} {'variant':<9} {'k_start':>7} {'k_end':>6} {'points':>6} "
-        f"{'ok':>4} {'tf_ns range':>17} {'trace dist. at min..max tf (ok points)':>40}"
+        f"{'ok':>4} {'warned':>6} {'tf_ns range':>17} "
+        f"{'trace dist. at min..max tf (ok points)':>40}"
     )
     lines = [head, "-" * len(head)]
     for (fam, var, k0, k1), rows in groups.items():
@@ -600,8 +644,10 @@ def format_summary(outcome: SweepOutcome) -> str:
             err = f"{_num(lo['trace_distance'])} .. {_num(hi['trace_distance'])}"
         else:
             err = "no ok point"
+        warned = sum(1 for r in rows if r.get("warnings"))
         lines.append(
-            f"{fam:<10} {var:<9} {k0:>7g} {k1:>6g} {len(rows):>6} {len(ok):>4} {span:>17} {err:>40}"
+            f"{fam:<10} {var:<9} {k0:>7g} {k1:>6g} {len(rows):>6} {len(ok):>4} {warned:>6} "
+            f"{span:>17} {err:>40}"
         )
     lines.append(
         f"{outcome.n_done}/{outcome.n_points} points stored ({outcome.n_computed} computed now, "
@@ -610,6 +656,7 @@ def format_summary(outcome: SweepOutcome) -> str:
     )
     for w in outcome.warnings:
         lines.append(f"warning (every point): {w}")
+    lines += _point_warning_lines(outcome.rows)
     if outcome.failed:
         lines.append(f"points not ok ({outcome.n_failed}):")
         for r in outcome.failed:

@@ -63,8 +63,9 @@ def test_report_counts_failed_points_and_reads_plainly(tmp_path) -> None:
     assert "5 points: 3 ok, 2 failed" in text
     headers = re.findall(r"<th[^>]*>(.*?)</th>", text)
     assert headers and not [h for h in headers if re.search(r"[a-z]_[a-z]", h)], headers
-    assert "C<sub>k</sub> fitted (ns<sup>k+1</sup>)" in headers
-    assert "C<sub>k</sub> predicted (ns<sup>k+1</sup>)" in headers
+    assert "C<sub>k</sub> fitted (ns<sup>p</sup>)" in headers
+    assert "C<sub>k</sub> predicted (ns<sup>p</sup>)" in headers
+    assert "both in ns<sup>p</sup>" in text
     # every table can scroll sideways instead of running off the page
     assert text.count('<div class="scroll"><table>') == text.count("<table>")
     if "agrees</td>" not in text:  # no fit agrees: the definition does not say one does

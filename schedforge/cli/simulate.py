@@ -8,6 +8,7 @@ import math
 import sys
 from typing import Any
 
+from ..analysis import DEFAULT_FLOOR_FACTOR, numerical_floor
 from ..dynamics import SimulationResult, simulate_spec
 from ..errors import InputError
 from ..progress import AnnealProgress, anneal_progress
@@ -77,6 +78,12 @@ def _clean(value: Any) -> Any:
     return value
 
 
+def _floor(result: SimulationResult) -> float:
+    """The numerical floor the analysis uses for this result (nan without an atol)."""
+    atol = result.stats.get("atol")
+    return numerical_floor(float(atol)) if atol is not None else math.nan
+
+
 def format_result(result: SimulationResult) -> str:
     """A readable multi-line summary of one simulation."""
     lines = [
@@ -88,8 +95,17 @@ def format_result(result: SimulationResult) -> str:
         f"status          {result.status}",
     ]
     if result.ok:
+        floor = _floor(result)
         lines += [
             f"trace distance  {result.trace_distance:.6e}   (||rho(tf) - sigma(1)||_1 / 2)",
+        ]
+        if result.trace_distance <= floor:
+            lines.append(
+                f"                below the numerical floor {floor:.2g} (= "
+                f"{DEFAULT_FLOOR_FACTOR:g} x numerics.atol): not resolved by the integrator, "
+                f"read it as < {floor:.2g}"
+            )
+        lines += [
             f"ground infid.   {result.ground_infidelity:.6e}   (1 - <ground|rho(tf)|ground>)",
             f"excess energy   {result.excess_energy_ghz:.6e} GHz "
             "(tr H(1)(rho(tf) - sigma(1)), E/h)",
@@ -136,7 +152,11 @@ def run(args: argparse.Namespace) -> int:
     finally:
         progress.finish()
     if args.json:
-        print(json.dumps(_clean(result.to_dict()), indent=2, sort_keys=True))
+        data = result.to_dict()
+        floor = _floor(result)
+        data["numerical_floor"] = floor
+        data["below_numerical_floor"] = bool(result.ok and result.trace_distance <= floor)
+        print(json.dumps(_clean(data), indent=2, sort_keys=True))
     else:
         print(format_result(result))
         for w in result.warnings:  # like the other commands: warnings on stderr

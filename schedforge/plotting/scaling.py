@@ -16,14 +16,20 @@ from matplotlib.figure import Figure
 from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
+from ..error_law import NO_K_END_FAMILIES
 from ..schedules import Schedule
 
 __all__ = [
+    "BOUNDED_METRICS",
     "plot_error_vs_tf",
     "plot_gap",
     "plot_local_slopes",
     "plot_schedule_derivatives",
 ]
+
+
+#: Error metrics that cannot exceed 1 (predicted lines are not drawn above it).
+BOUNDED_METRICS: frozenset[str] = frozenset({"trace_distance", "ground_infidelity"})
 
 
 def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
@@ -36,14 +42,14 @@ def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
 
 
 def _label(fit: ScalingFit) -> str:
-    k = "" if fit.family == "linear" else f" k_end={fit.k_end:g}"
+    k = "" if fit.family in NO_K_END_FAMILIES else f" k_end={fit.k_end:g}"
     v = "" if fit.variant == "ideal" else f" ({fit.variant})"
     return f"{fit.family}{k}{v}"
 
 
-def _power_unit(k_end: float) -> str:
-    """``ns^(k+1)`` in mathtext, the unit of C_k in err = C_k / tf^(k+1)."""
-    return f"ns$^{{{k_end + 1:g}}}$"
+def _power_unit(power: float) -> str:
+    """``ns^power`` in mathtext: the unit of C_k in err = C_k / tf^power (power = k + 1)."""
+    return f"ns$^{{{power:g}}}$" if math.isfinite(power) else ""
 
 
 def _data_limits(values: ArrayLike, margin: float = 3.0) -> tuple[float, float] | None:
@@ -76,9 +82,10 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     Filled markers: usable points; open grey markers: points not fitted (at the
     numerical floor or failed); large ring: the fitted regime.  Solid line: the
     fitted power law over the regime; dashed: the predicted law
-    ``C_k tf^-(k+1)``; dotted: the numerical floor (drawn when it lies within the
-    data's range).  The y axis is fitted to the points, not to the floor or the
-    lines; the legend sits under the axes.
+    ``C_k tf^(expected slope)``, not drawn where it would exceed 1 for a bounded
+    metric (a trace distance is at most 1); dotted: the numerical floor (drawn when it
+    lies within the data's range).  The y axis is fitted to the points, not to the
+    floor or the lines; the legend sits under the axes.
     """
     fig, ax = _axes(ax, (5.0, 4.3))
     tf = np.asarray(fit.tf_ns)
@@ -103,16 +110,21 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
             color="C1",
             label=f"fit: slope {fit.slope:.3f}",
         )
-    if math.isfinite(fit.coefficient_predicted) and tf.size:
+    if math.isfinite(fit.coefficient_predicted) and math.isfinite(fit.expected_slope) and tf.size:
         t_line = np.geomspace(tf.min(), tf.max(), 50)
-        ax.loglog(
-            t_line,
-            fit.coefficient_predicted * t_line ** -(fit.k_end + 1.0),
-            "--",
-            color="C2",
-            label=f"predicted: $C_{{{fit.k_end:g}}}$ = {fit.coefficient_predicted:.3g} "
-            + _power_unit(fit.k_end),
-        )
+        predicted = fit.coefficient_predicted * t_line**fit.expected_slope
+        if fit.metric in BOUNDED_METRICS:
+            # a trace distance (or an infidelity) is at most 1: the law says nothing above
+            predicted = np.where(predicted <= 1.0, predicted, np.nan)
+        if np.isfinite(predicted).any():
+            ax.loglog(
+                t_line,
+                predicted,
+                "--",
+                color="C2",
+                label=f"predicted: $C_{{{fit.k_end:g}}}$ = {fit.coefficient_predicted:.3g} "
+                + _power_unit(-fit.expected_slope),
+            )
     limits = _data_limits(err[finite])
     if limits is None:  # nothing to scale to: say so instead of an empty frame
         ax.text(
@@ -145,7 +157,7 @@ def plot_local_slopes(fits: Sequence[ScalingFit], ax: Axes | None = None) -> Fig
     """Local slopes d log(err) / d log(tf) vs tf for several schedules.
 
     Each slope is drawn at the geometric mean of its two tf values; the
-    expected slope -(k_end + 1) of each schedule is a dashed line of the same
+    expected slope of each schedule's error law is a dashed line of the same
     colour.
     """
     fig, ax = _axes(ax, (7.0, 4.0))
