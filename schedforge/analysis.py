@@ -1,9 +1,11 @@
 """Scaling analysis of a sweep: regime detection, power-law fits and verdicts.
 
 A sweep gives, for one schedule (family, variant, k_start, k_end), the error
-``err(tf)`` at several anneal times.  In the equilibrated regime the error of a
-schedule flat to order ``k_end`` at the end falls as ``C_k tf^-(k_end + 1)``.
-This module finds that regime automatically and fits it.
+``err(tf)`` at several anneal times.  In the asymptotic regime it falls as a power
+of tf given by :func:`schedforge.error_law.error_law`: ``tf^-(k_end + 1)`` for
+open (Davies) dynamics, ``tf^-(min(k_start, k_end) + 1)`` for closed (unitary)
+dynamics.  This module finds that regime automatically and fits it; ``fit.csv``
+names the law used (column ``error_law``).
 
 Method (all choices are ours and documented here; the tolerances are common
 practice, no source):
@@ -29,20 +31,31 @@ practice, no source):
    its own uncertainty from noise at the level of the integrator's ``atol``.
    At least :data:`MIN_REGIME_POINTS` points are required; with fewer the
    verdict is ``regime not reached`` and the message says which tf range to add.
+   Points with tf shorter than ``RELAXATION_FACTOR`` (= 5) times the system's own
+   time scale (``time_scale_ns``: 1/gap(1) of the final generator for open
+   dynamics, 1/min spectral gap for closed dynamics; see
+   :mod:`schedforge.error_law`) are never part of the regime: the law cannot
+   hold there, however steady the local slopes look.
 5. **Fit.**  Ordinary least squares of ``log(err)`` on ``log(tf)`` over the
    regime, with the standard error of the slope from the residuals (``n - 2``
-   degrees of freedom).  Verdict ``agrees`` when ``|slope - expected| <= slope_tol``
-   with ``expected = -(k_end + 1)`` (default ``slope_tol`` =
-   :data:`DEFAULT_SLOPE_TOL` = 0.03).  Otherwise, if the local slopes of the
-   regime move monotonically toward ``expected`` (the approach to the law, with
-   its 1/tf correction), the verdict is ``regime not reached`` (add larger tf);
-   else ``disagrees``.
-6. **Fitted coefficient.**  Only for ``agrees``: the leading coefficient of the
+   degrees of freedom).  The slope *matches* when ``|slope - expected| <=
+   slope_tol`` (default ``slope_tol`` = :data:`DEFAULT_SLOPE_TOL` = 0.03).  If it
+   does not match and the local slopes of the regime move monotonically toward
+   ``expected`` (the approach to the law, with its 1/tf correction), the verdict
+   is ``regime not reached`` (add larger tf); else ``disagrees``.
+6. **Fitted coefficient.**  When the slope matches: the leading coefficient of the
    law ``err = C tf^-(k+1) (1 + D / tf + ...)`` (the next term of the adiabatic
    expansion is one power of tf smaller), obtained by a least-squares line of
    ``err * tf^(k+1)`` against ``1 / tf`` over the regime and read at ``1/tf = 0``.
    With a single regime point more than needed this is a Richardson-type
    extrapolation; it is exact for data that follow the two-term law.
+7. **Agreement.**  ``agrees`` needs all the evidence: steady local slopes (step 4),
+   tf long against the time scale (step 4), a matching slope (step 5) and, when a
+   coefficient was predicted, a fitted coefficient within
+   ``COEFFICIENT_RTOL`` (= 10 %) of it.  A fit that matches the slope but not the
+   coefficient is ``regime not reached`` (a transient can pass through the right
+   slope), with the tf range to add.  Without a prediction (closed dynamics,
+   more than 32 levels) the coefficient is not checked and the message says so.
 
 Verdict strings are exactly :data:`VERDICTS`.
 """
@@ -59,6 +72,16 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from .error_law import (
+    CLOSED,
+    COEFFICIENT_RTOL,
+    NO_K_END_FAMILIES,
+    OPEN,
+    RELAXATION_FACTOR,
+    ErrorLaw,
+    end_orders,
+    error_law,
+)
 from .errors import InputError
 from .fileio import atomic_write
 
@@ -113,6 +136,7 @@ FIT_COLUMNS: tuple[str, ...] = (
     "k_start",
     "k_end",
     "metric",
+    "error_law",
     "slope",
     "slope_stderr",
     "expected_slope",
@@ -159,9 +183,9 @@ class ScalingFit:
     slope, slope_stderr, intercept : float
         Fit of ``log err = intercept + slope log tf`` (nan when not fitted).
     expected_slope : float
-        ``-(k_end + 1)``, nan for a family without a polynomial law (gevrey).
+        Slope of the error law (``law.slope``), nan without a polynomial law.
     coefficient_fit : float
-        Extrapolated leading coefficient (only for ``agrees``; else nan).
+        Extrapolated leading coefficient (when the slope matches the law; else nan).
     coefficient_predicted : float
         Leading coefficient predicted from the final generator (nan if none).
     floor : float
@@ -170,6 +194,10 @@ class ScalingFit:
         One of :data:`VERDICTS`.
     message : str
         Plain-language explanation (what to add when the regime is not reached).
+    law : ErrorLaw
+        The error law the fit was held against (open or closed dynamics).
+    time_scale_ns : float
+        The time scale tf must be long against (1/gap; nan when unknown).
     """
 
     family: str
@@ -192,6 +220,13 @@ class ScalingFit:
     verdict: str
     message: str
     extra: dict[str, Any] = field(default_factory=dict, compare=False)
+    law: ErrorLaw | None = None
+    time_scale_ns: float = math.nan
+
+    @property
+    def law_label(self) -> str:
+        """The error law used, e.g. ``"open: tf^-(k_end+1) = tf^-3"`` ("" if none)."""
+        return "" if self.law is None else self.law.label
 
     @property
     def regime_tf_min_ns(self) -> float:
@@ -221,6 +256,7 @@ class ScalingFit:
             "k_start": self.k_start,
             "k_end": self.k_end,
             "metric": self.metric,
+            "error_law": self.law_label,
             "slope": self.slope,
             "slope_stderr": self.slope_stderr,
             "expected_slope": self.expected_slope,
@@ -239,13 +275,15 @@ def numerical_floor(atol: float, factor: float = DEFAULT_FLOOR_FACTOR) -> float:
     return float(factor) * float(atol)
 
 
-def expected_slope(family: str, k_end: float) -> float:
-    """The slope of the error law: ``-(k_end + 1)``; nan for ``gevrey`` (no polynomial law)."""
-    if family == "gevrey" or not math.isfinite(k_end):
-        return math.nan
-    if family == "linear":
-        return -1.0
-    return -(float(k_end) + 1.0)
+def expected_slope(
+    family: str, k_end: float, *, k_start: float = 0.0, dynamics: str = OPEN
+) -> float:
+    """The slope of the error law (:func:`schedforge.error_law.error_law`).
+
+    Open dynamics: ``-(k_end + 1)``; closed: ``-(min(k_start, k_end) + 1)``; nan
+    without a polynomial law (``gevrey``, infinite k).
+    """
+    return error_law(dynamics, family, k_start, k_end).slope
 
 
 def local_slopes(tf_ns: ArrayLike, error: ArrayLike) -> NDArray[np.float64]:
@@ -443,15 +481,25 @@ def _not_reached_message(
 
 
 def _extrapolated_coefficient(
-    tf: NDArray[np.float64], error: NDArray[np.float64], k_end: float
+    tf: NDArray[np.float64], error: NDArray[np.float64], order: float
 ) -> float:
-    """Leading C of ``err = C tf^-(k+1) (1 + D/tf)``: intercept at 1/tf = 0."""
-    y = error * tf ** (k_end + 1.0)
+    """Leading C of ``err = C tf^-(k+1) (1 + D/tf)`` with k = ``order``: intercept at 1/tf = 0."""
+    y = error * tf ** (order + 1.0)
     if tf.size < 2:
         return float(y[0])
     slope, intercept = np.polyfit(1.0 / tf, y, 1)
     del slope
     return float(intercept)
+
+
+def _suggest_tf(lo: float) -> str:
+    """A tf range to add above ``lo``: three points over a decade."""
+    pts = np.geomspace(lo, 10.0 * lo, 3)
+    return (
+        f"add tf from {_fmt_tf(lo)} to {_fmt_tf(10.0 * lo)} ns (e.g. "
+        + ", ".join(_fmt_tf(float(p)) for p in pts)
+        + " ns)"
+    )
 
 
 def fit_scaling(
@@ -469,19 +517,22 @@ def fit_scaling(
     regime_tol: float = DEFAULT_REGIME_TOL,
     coefficient_predicted: float = math.nan,
     noise: float | None = None,
+    dynamics: str = OPEN,
+    time_scale_ns: float = math.nan,
 ) -> ScalingFit:
-    """Detect the equilibrated regime of one schedule's points and fit it.
+    """Detect the asymptotic regime of one schedule's points and fit it.
 
     Parameters
     ----------
     tf_ns, error : array_like
         Anneal times (ns) and errors; any order, sorted here.
     k_end : float
-        Designed flatness order at the end; the expected slope is ``-(k_end + 1)``.
+        Designed flatness order at the end.
     status : sequence of str, optional
         Per-point status; only ``"ok"`` points are fitted.
     family, variant, k_start, metric : str or float
-        Labels carried into the result.
+        Labels carried into the result; ``family`` and ``k_start`` also choose the
+        law (see ``dynamics``).
     floor : float
         Numerical floor (see :func:`numerical_floor`); errors at or below it are
         not fitted.
@@ -490,12 +541,19 @@ def fit_scaling(
     regime_tol : float
         Width of the band of local slopes within the regime.
     coefficient_predicted : float
-        Predicted coefficient to carry into the result (see
-        :mod:`schedforge.prediction`).
+        Predicted coefficient (see :mod:`schedforge.prediction`); when finite, the
+        fitted coefficient must lie within ``COEFFICIENT_RTOL`` of it for ``agrees``.
     noise : float, optional
         Absolute noise level of the errors, used to widen each local slope's
         allowance in :func:`detect_regime`; default ``floor / DEFAULT_FLOOR_FACTOR``
         (the integrator's ``atol`` when the floor comes from :func:`numerical_floor`).
+    dynamics : {"open", "closed"}
+        Which law applies (:func:`schedforge.error_law.error_law`): open,
+        ``tf^-(k_end + 1)``; closed, ``tf^-(min(k_start, k_end) + 1)``.
+    time_scale_ns : float
+        1/gap (ns) that tf must be long against (:func:`schedforge.error_law.law_time_scale_ns`);
+        points below ``RELAXATION_FACTOR`` times it are never in the regime.  nan:
+        not checked (the message says so).
 
     Returns
     -------
@@ -513,7 +571,10 @@ def fit_scaling(
         slopes_all = local_slopes(tf, err) if tf.size > 1 else np.zeros(0)
     both = usable[:-1] & usable[1:] if tf.size > 1 else np.zeros(0, dtype=bool)
     slopes_all = np.where(both, slopes_all, np.nan)
-    expected = expected_slope(family, k_end)
+    law = error_law(dynamics, family, k_start, k_end)
+    expected = law.slope
+    tau = float(time_scale_ns)
+    tf_law_min = RELAXATION_FACTOR * tau if math.isfinite(tau) else 0.0
 
     nan = math.nan
     common = dict(
@@ -529,7 +590,21 @@ def fit_scaling(
         expected_slope=expected,
         coefficient_predicted=float(coefficient_predicted),
         floor=float(floor),
+        law=law,
+        time_scale_ns=tau,
     )
+
+    def not_reached(message: str) -> ScalingFit:
+        return ScalingFit(
+            regime=(),
+            slope=nan,
+            slope_stderr=nan,
+            intercept=nan,
+            coefficient_fit=nan,
+            verdict=NOT_REACHED,
+            message=message,
+            **common,
+        )
 
     tail = _tail_run(usable)
     if len(tail) >= MIN_REGIME_POINTS:
@@ -551,64 +626,100 @@ def fit_scaling(
                 **common,
             )
 
+    if math.isinf(tau):
+        return not_reached(
+            "the final generator has no relaxation gap (1/gap infinite): the error law "
+            "cannot hold at any tf"
+        )
     if noise is None:
         noise = floor / DEFAULT_FLOOR_FACTOR
-    regime = detect_regime(tf, err, usable, regime_tol, noise)
+    long_enough = usable & (tf >= tf_law_min)
+    regime = detect_regime(tf, err, long_enough, regime_tol, noise)
     if len(regime) < MIN_REGIME_POINTS:
-        return ScalingFit(
-            regime=(),
-            slope=nan,
-            slope_stderr=nan,
-            intercept=nan,
-            coefficient_fit=nan,
-            verdict=NOT_REACHED,
-            message=_not_reached_message(tf, err, usable, st, floor, regime),
-            **common,
-        )
+        short = usable & ~long_enough
+        if short.any() and int(np.count_nonzero(long_enough)) < MIN_REGIME_POINTS:
+            n_long = int(np.count_nonzero(long_enough))
+            return not_reached(
+                f"only {n_long} usable point(s) with tf >= {RELAXATION_FACTOR:g} x 1/gap = "
+                f"{_fmt_tf(tf_law_min)} ns (1/gap = {tau:.3g} ns; the law cannot hold at "
+                f"shorter tf); {_suggest_tf(max(tf_law_min, float(tf[usable].max())))}"
+            )
+        message = _not_reached_message(tf, err, long_enough, st, floor, regime)
+        k0, k1 = end_orders(family, k_start, k_end)
+        if law.dynamics == CLOSED and law.polynomial and k0 == k1:
+            message += (
+                "; with equal flatness at both ends of a closed system the two boundary "
+                "terms interfere and the local slopes oscillate with tf, so a steady run "
+                "may never appear (k_start != k_end gives a clean law)"
+            )
+        return not_reached(message)
 
     slope, stderr, intercept = fit_power_law(tf[regime], err[regime])
     span = f"tf {_fmt_tf(tf[regime[0]])}..{_fmt_tf(tf[regime[-1]])} ns ({len(regime)} points)"
-    if math.isnan(expected):
-        verdict = DISAGREES
-        message = (
-            f"slope {slope:.3f} +- {stderr:.2g} over {span}: a power law, where this "
-            "family should decay faster than any power"
-        )
-        coeff = nan
-    elif abs(slope - expected) <= slope_tol:
-        verdict = AGREES
-        message = (
-            f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.0f} +- {slope_tol}"
-        )
-        coeff = _extrapolated_coefficient(tf[regime], err[regime], k_end)
-    elif _drifting_toward(local_slopes(tf[regime], err[regime]), expected):
-        # Pre-asymptotic: the slopes still approach the law; more tf will tell.
+    scale_note = (
+        f"; tf >= {RELAXATION_FACTOR:g} x 1/gap = {_fmt_tf(tf_law_min)} ns"
+        if math.isfinite(tau)
+        else "; tf not checked against 1/gap (unknown)"
+    )
+    if not law.polynomial:
         return ScalingFit(
-            regime=(),
-            slope=nan,
-            slope_stderr=nan,
-            intercept=nan,
+            regime=tuple(regime),
+            slope=slope,
+            slope_stderr=stderr,
+            intercept=intercept,
             coefficient_fit=nan,
-            verdict=NOT_REACHED,
+            verdict=DISAGREES,
             message=(
-                f"local slopes still drift toward {expected:.0f} over {span} (fit there: "
-                f"{slope:.3f}); add tf above {_fmt_tf(tf[regime[-1]])} ns"
+                f"slope {slope:.3f} +- {stderr:.2g} over {span}: a power law, where this "
+                "family should decay faster than any power"
             ),
             **common,
         )
-    else:
-        verdict = DISAGREES
-        message = (
-            f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.0f} +- {slope_tol}"
+    if abs(slope - expected) > slope_tol:
+        if _drifting_toward(local_slopes(tf[regime], err[regime]), expected):
+            # Pre-asymptotic: the slopes still approach the law; more tf will tell.
+            return not_reached(
+                f"local slopes still drift toward {expected:.3g} over {span} (fit there: "
+                f"{slope:.3f}); add tf above {_fmt_tf(tf[regime[-1]])} ns"
+            )
+        return ScalingFit(
+            regime=tuple(regime),
+            slope=slope,
+            slope_stderr=stderr,
+            intercept=intercept,
+            coefficient_fit=nan,
+            verdict=DISAGREES,
+            message=(
+                f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.3g} "
+                f"+- {slope_tol} ({law.formula})"
+            ),
+            **common,
         )
-        coeff = nan
+    coeff = _extrapolated_coefficient(tf[regime], err[regime], law.order)
+    pred = float(coefficient_predicted)
+    base = (
+        f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.3g} +- "
+        f"{slope_tol} ({law.formula}){scale_note}"
+    )
+    if math.isfinite(pred) and pred > 0:
+        ratio = coeff / pred
+        if not abs(ratio - 1.0) <= COEFFICIENT_RTOL:
+            return not_reached(
+                f"the slope matches over {span} ({slope:.3f}), but the fitted coefficient "
+                f"is {ratio:.3g} x the predicted one (tolerance {COEFFICIENT_RTOL:.0%}): the "
+                f"points lie on a transient, not on the law; "
+                f"{_suggest_tf(max(float(tf[regime[-1]]), tf_law_min))}"
+            )
+        message = f"{base}; coefficient {ratio:.4f} x predicted (within {COEFFICIENT_RTOL:.0%})"
+    else:
+        message = f"{base}; coefficient not checked (no prediction)"
     return ScalingFit(
         regime=tuple(regime),
         slope=slope,
         slope_stderr=stderr,
         intercept=intercept,
         coefficient_fit=coeff,
-        verdict=verdict,
+        verdict=AGREES,
         message=message,
         **common,
     )
@@ -623,6 +734,8 @@ def fit_points(
     slope_tol: float = DEFAULT_SLOPE_TOL,
     regime_tol: float = DEFAULT_REGIME_TOL,
     predicted: Mapping[tuple[str, float, float], float] | None = None,
+    dynamics: str = OPEN,
+    time_scale_ns: float = math.nan,
 ) -> list[ScalingFit]:
     """Fit every schedule of a sweep.
 
@@ -638,7 +751,10 @@ def fit_points(
         Error column to analyse.
     predicted : mapping, optional
         Predicted coefficient by ``(family, k_start, k_end)``; carried into the
-        ``ideal`` fits only (a realized waveform is not flat as designed).
+        ``ideal`` fits of the trace distance only (a realized waveform is not flat
+        as designed; C_k is a trace-distance coefficient).
+    dynamics, time_scale_ns
+        The law and the time scale (see :func:`fit_scaling`).
 
     Returns
     -------
@@ -660,7 +776,7 @@ def fit_points(
         family, variant, k_start, k_end = key
         pts = groups[key]
         pred = math.nan
-        if predicted is not None and variant == "ideal":
+        if predicted is not None and variant == "ideal" and metric == "trace_distance":
             pred = float(predicted.get((family, k_start, k_end), math.nan))
         fits.append(
             fit_scaling(
@@ -676,6 +792,8 @@ def fit_points(
                 slope_tol=slope_tol,
                 regime_tol=regime_tol,
                 coefficient_predicted=pred,
+                dynamics=dynamics,
+                time_scale_ns=time_scale_ns,
             )
         )
     return fits
@@ -740,6 +858,12 @@ def _num(v: float, fmt: str) -> str:
     return "-" if (isinstance(v, float) and math.isnan(v)) else format(v, fmt)
 
 
+def _k(fit: ScalingFit, k: float, *, end: bool = True) -> str:
+    """A flatness order for a table: "-" where the family has no such k."""
+    none = fit.family in NO_K_END_FAMILIES if end else fit.family == "linear"
+    return "-" if none else f"{k:g}"
+
+
 def format_fit_table(fits: Sequence[ScalingFit]) -> str:
     """A plain-text summary table: one line per schedule, honest about missing numbers.
 
@@ -747,10 +871,13 @@ def format_fit_table(fits: Sequence[ScalingFit]) -> str:
     coefficient for a fit that does not agree with the expected law.
     """
     head = (
-        f"{'family':<8} {'variant':<8} {'k_end':>5} {'slope':>14} {'expected':>8} "
+        f"{'family':<8} {'variant':<8} {'k_start':>7} {'k_end':>5} {'slope':>14} {'expected':>8} "
         f"{'regime tf (ns)':>17} {'C fit':>10} {'C predicted':>11}  verdict"
     )
     lines = [head, "-" * len(head)]
+    formulas = sorted({f.law.formula for f in fits if f.law is not None})
+    if formulas:
+        lines.insert(0, "error law used: " + "; ".join(formulas))
     for f in fits:
         slope = (
             "-"
@@ -760,8 +887,9 @@ def format_fit_table(fits: Sequence[ScalingFit]) -> str:
         )
         regime = "-" if not f.regime else f"{f.regime_tf_min_ns:.3g}..{f.regime_tf_max_ns:.3g}"
         lines.append(
-            f"{f.family:<8} {f.variant:<8} {f.k_end:>5g} {slope:>14} "
-            f"{_num(f.expected_slope, '.0f'):>8} {regime:>17} "
+            f"{f.family:<8} {f.variant:<8} {_k(f, f.k_start, end=False):>7} "
+            f"{_k(f, f.k_end):>5} {slope:>14} "
+            f"{_num(f.expected_slope, '.3g'):>8} {regime:>17} "
             f"{_num(f.coefficient_fit, '.4g'):>10} {_num(f.coefficient_predicted, '.4g'):>11}"
             f"  {f.verdict}"
         )

@@ -31,7 +31,7 @@ the phases of coherences; QuTiP's Bloch-Redfield solver omits it.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -48,6 +48,7 @@ __all__ = [
     "SpectralDensity",
     "lamb_shift_function",
     "make_bath",
+    "steady_state_advice",
 ]
 
 #: A spectral density: rad/ns in, rad/ns out, vectorised.
@@ -298,3 +299,47 @@ def make_bath(spec: Any, n_qubits: int) -> Bath | None:
     )
     ops = tuple(pauli_operator(coupling, q, n_qubits) for q in range(n_qubits))
     return Bath(density, ops, lamb_shift=bool(spec.lamb_shift))
+
+
+def steady_state_advice(h_final: NDArray[Any], operators: Sequence[NDArray[Any]]) -> str:
+    """What to change when the final generator has several steady states.
+
+    Parameters
+    ----------
+    h_final : ndarray
+        H(1), a ``(2**n, 2**n)`` matrix.
+    operators : sequence of ndarray
+        The coupling operators, one per qubit (qubit q is ``operators[q]``).
+
+    Returns
+    -------
+    str
+        One sentence: the qubits H(1) does not act on (no field or coupling left
+        at s = 1; no bath coupling can relax them), else the coupling operators
+        that commute with H(1), else a generic hint.
+    """
+    from .hamiltonian import pauli_operator
+
+    n = len(operators)
+    scale = max(1.0, float(np.max(np.abs(h_final))))
+
+    def commutes(op: NDArray[Any]) -> bool:
+        return bool(np.allclose(h_final @ op - op @ h_final, 0.0, atol=1e-12 * scale))
+
+    idle = [q for q in range(n) if all(commutes(pauli_operator(k, q, n)) for k in ("x", "y", "z"))]
+    if idle:
+        which = ", ".join(str(q) for q in idle)
+        return (
+            f"H(1) does not act on qubit(s) {which} (no field h_i or coupling J left on them at "
+            "s = 1), so no bath coupling can relax them: give each a field h_i or a coupling "
+            "J_ij, or use device curves with A(1) > 0"
+        )
+    if all(commutes(op) for op in operators):
+        return (
+            'the coupling operators commute with H(1) (e.g. coupling = "z" when A(1) = 0): '
+            "use a coupling that does not (x or y), or device curves with A(1) > 0"
+        )
+    return (
+        "the bath does not connect some degenerate levels of H(1): add fields h_i that break "
+        "the degeneracy, or use device curves with A(1) > 0"
+    )

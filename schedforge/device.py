@@ -90,4 +90,4 @@ def make_device_curves(spec: Any) -> DeviceCurves:
         return LinearCurves(spec.A0_ghz, spec.B0_ghz)
     from .device_table import TabulatedCurves  # CSV curves (waveform/device issue)
 
-    return TabulatedCurves.from_csv(spec.curves)
+    return TabulatedCurves.from_csv(spec.curves, sha256=getattr(spec, "curves_sha256", None))

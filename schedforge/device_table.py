@@ -45,6 +45,7 @@ the interval, rather than silently clipping.
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
 from pathlib import Path
@@ -57,13 +58,42 @@ from scipy.interpolate import BSpline, make_interp_spline
 from .device import DeviceCurves
 from .errors import InputError
 
-__all__ = ["COARSE_RTOL", "COLUMNS", "TabulatedCurves"]
+__all__ = ["COARSE_RTOL", "COLUMNS", "MAX_CURVES_BYTES", "TabulatedCurves", "file_sha256"]
 
 #: Column names of a curves file.
 COLUMNS: tuple[str, ...] = ("s", "A_ghz", "B_ghz")
 #: Relative difference between the degree-d and cubic interpolants that counts as too coarse.
 COARSE_RTOL = 1e-4
+#: Largest curves file read (16 MiB: about half a million rows).
+MAX_CURVES_BYTES = 16 * 1024 * 1024
+#: Largest |A|, |B| in GHz accepted from a table (common practice, no source: qubit
+#: energy scales are of order 1-100 GHz; beyond 1e6 GHz numbers stop meaning energies).
+MAX_CURVE_GHZ = 1e6
 _NOISE_FRACTION = 0.25
+
+
+def _read_bytes(path: Path) -> bytes:
+    """The curves file's bytes (size capped); InputError naming ``device.curves``."""
+    try:
+        size = path.stat().st_size
+        if size > MAX_CURVES_BYTES:
+            raise InputError(
+                "device.curves",
+                f"names a file of {size / 2**20:.1f} MiB ({path}); at most "
+                f"{MAX_CURVES_BYTES // 2**20} MiB is read",
+            )
+        return path.read_bytes()
+    except FileNotFoundError:
+        raise InputError("device.curves", f"names a file that does not exist: {path}") from None
+    except OSError as exc:
+        raise InputError("device.curves", f"could not be read ({path}): {exc}") from None
+
+
+def file_sha256(path: str | os.PathLike[str]) -> str:
+    """SHA-256 (hex) of a curves file's bytes (InputError if it cannot be read)."""
+    return hashlib.sha256(_read_bytes(Path(path))).hexdigest()
+
+
 _NOISE_MIN_ROWS = 12
 
 
@@ -99,6 +129,7 @@ class TabulatedCurves(DeviceCurves):
         if degree not in (3, 5, 7, 9):
             raise ValueError(f"degree must be 3, 5, 7 or 9, got {degree!r}")
         self.source = source
+        self.sha256: str | None = None  # of the file read by from_csv
         self.degree = int(degree)
         self.continuity = self.degree - 1
         field = f"device.curves ({Path(source).name})"
@@ -116,21 +147,41 @@ class TabulatedCurves(DeviceCurves):
 
     # -- construction ----------------------------------------------------------
     @classmethod
-    def from_csv(cls, path: str | os.PathLike[str], *, degree: int = 5) -> TabulatedCurves:
+    def from_csv(
+        cls, path: str | os.PathLike[str], *, degree: int = 5, sha256: str | None = None
+    ) -> TabulatedCurves:
         """Read and validate a curves CSV file (see the module docstring).
+
+        Parameters
+        ----------
+        path : path-like
+            The file (UTF-8, a byte-order mark is accepted).
+        degree : int
+            Spline degree.
+        sha256 : str, optional
+            The SHA-256 (hex) the file's bytes must have: the contents the study
+            was made with (``DeviceSpec.curves_sha256``).
 
         Raises
         ------
         InputError
-            Naming ``device.curves (FILE): line N, column C`` and the rule broken.
+            Naming ``device.curves (FILE): line N, column C`` and the rule broken,
+            or a file whose contents differ from ``sha256``.
         """
         p = Path(path)
         field = f"device.curves ({p.name})"
+        data = _read_bytes(p)
+        digest = hashlib.sha256(data).hexdigest()
+        if sha256 is not None and digest != sha256:
+            raise InputError(
+                "device.curves",
+                f"names a file whose contents changed since the spec was read ({p}: "
+                f"SHA-256 {digest[:12]}, the study was made with {sha256[:12]}); a study's "
+                "curves must not change: restore the file, or start a new study",
+            )
         try:
-            lines = p.read_text(encoding="utf-8").splitlines()
-        except FileNotFoundError:
-            raise InputError("device.curves", f"names a file that does not exist: {p}") from None
-        except (OSError, UnicodeDecodeError) as exc:
+            lines = data.decode("utf-8-sig").splitlines()
+        except UnicodeDecodeError as exc:
             raise InputError("device.curves", f"could not be read ({p}): {exc}") from None
         order: list[int] | None = None
         rows: list[tuple[float, float, float]] = []
@@ -144,7 +195,8 @@ class TabulatedCurves(DeviceCurves):
             if order is None:
                 if sorted(cells) != sorted(COLUMNS) or len(cells) != 3:
                     raise InputError(
-                        where, f"must be the header {','.join(COLUMNS)} (any order), got {line!r}"
+                        where,
+                        f"must be the header {','.join(COLUMNS)} (any order), got {_clip(line)}",
                     )
                 order = [cells.index(name) for name in COLUMNS]
                 continue
@@ -156,10 +208,17 @@ class TabulatedCurves(DeviceCurves):
                     v = float(cells[col])
                 except ValueError:
                     raise InputError(
-                        f"{where}, column {name}", f"must be a number, got {cells[col]!r}"
+                        f"{where}, column {name}", f"must be a number, got {_clip(cells[col])}"
                     ) from None
                 if not math.isfinite(v):
-                    raise InputError(f"{where}, column {name}", f"must be finite, got {cells[col]}")
+                    raise InputError(
+                        f"{where}, column {name}", f"must be finite, got {_clip(cells[col])}"
+                    )
+                if name != "s" and abs(v) > MAX_CURVE_GHZ:
+                    raise InputError(
+                        f"{where}, column {name}",
+                        f"must be at most {MAX_CURVE_GHZ:g} GHz, got {v:g}",
+                    )
                 vals.append(v)
             s_val, a_val, b_val = vals
             if not 0.0 <= s_val <= 1.0:
@@ -190,8 +249,16 @@ class TabulatedCurves(DeviceCurves):
                 f"{field}: line {last_line}, column s",
                 f"must end the table at s = 1 exactly, got {rows[-1][0]!r}",
             )
-        data = np.array(rows)
-        return cls(data[:, 0], data[:, 1], data[:, 2], source=str(p), degree=degree)
+        table = np.array(rows)
+        if not np.any(table[-1, 1:] > 0.0):
+            raise InputError(
+                f"{field}: line {last_line}",
+                "must not have A_ghz = B_ghz = 0 at s = 1: H(1) would vanish, and with it "
+                "the final state the anneal aims at",
+            )
+        curves = cls(table[:, 0], table[:, 1], table[:, 2], source=str(p), degree=degree)
+        curves.sha256 = digest
+        return curves
 
     # -- checks ------------------------------------------------------------------
     def _fine_grid(self, per: int = 16) -> NDArray[np.float64]:
@@ -290,6 +357,13 @@ class TabulatedCurves(DeviceCurves):
         return {
             "curves": "table",
             "source": self.source,
+            "sha256": self.sha256,
             "rows": int(self.s.size),
             "interpolation": f"degree-{self.degree} spline (C^{self.continuity})",
         }
+
+
+def _clip(value: object, limit: int = 60) -> str:
+    """``repr(value)`` cut to ``limit`` characters (for messages)."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."

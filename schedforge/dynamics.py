@@ -39,9 +39,10 @@ import numpy as np
 from numpy.typing import NDArray
 from threadpoolctl import threadpool_limits
 
-from .bath import Bath, make_bath
+from .bath import Bath, make_bath, steady_state_advice
 from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eigen_decomposition
 from .device import make_device_curves
+from .error_law import relaxation_warning
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
 from .schedules import Schedule, schedule_from_spec
@@ -261,9 +262,8 @@ class System:
                 f"leaves the final generator L(1) with {final.zero_count} independent "
                 "steady states "
                 "(its zero eigenvalue is degenerate), so the distance to 'the' steady state is "
-                "undefined. This happens when the coupling operators commute with H(1), e.g. "
-                'coupling = "z" when A(1) = 0. Use coupling "x" or "y", or device curves '
-                "with A(1) > 0",
+                "undefined: "
+                + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
             )
         gaps = np.full(grid.size, np.nan)
         skipped = []
@@ -651,6 +651,8 @@ def simulate(
             raise InputError(name, f"must be a finite number > 0, got {val!r}")
     start = time.perf_counter()
     warnings = tuple(system.preflight())
+    short = relaxation_warning(system, float(tf_ns))  # the error law cannot hold there
+    warnings += (short,) if short else ()
     if getattr(schedule, "jumps", False) and integrator != HELD_INTEGRATOR:
         # s(t) jumps (an unfiltered hold): only the exact piecewise-constant propagator
         # handles it; the others follow a continuous s(t) and would miss the jumps
@@ -739,6 +741,10 @@ def simulate_spec(
         if val is not None
     }
     sched_spec = replace(spec.schedule, **changes)
+    from .limits import check_memory, check_run_cost  # out of reach: refused with the figure
+
+    check_memory(spec.problem.qubits)
+    check_run_cost(spec, sched_spec.tf_ns, spec.numerics.integrator, realized=variant == "realized")
     system = System.from_spec(spec)
     schedule = schedule_from_spec(sched_spec)
     if variant == "realized":

@@ -24,7 +24,16 @@ class InputError(ValueError):
         as a sentence, e.g. ``"must be an integer >= 0, got -1"``.
     """
 
+    #: Longest field and rule kept (a message never echoes a huge value whole).
+    MAX_FIELD_CHARS = 300
+    MAX_RULE_CHARS = 2000
+
     def __init__(self, field: str, rule: str) -> None:
+        field, rule = str(field), str(rule)
+        if len(field) > self.MAX_FIELD_CHARS:
+            field = field[: self.MAX_FIELD_CHARS - 3] + "..."
+        if len(rule) > self.MAX_RULE_CHARS:
+            rule = rule[: self.MAX_RULE_CHARS - 3] + "..."
         self.field = field
         self.rule = rule
         super().__init__(f"`{field}` {rule}")

@@ -17,8 +17,8 @@ the caller can report it without stopping the other items.
 
 Worker processes run with one BLAS/OpenMP thread each (``OMP_NUM_THREADS`` and
 friends set to 1 unless already set), so that N workers on N cores do not
-oversubscribe the machine.  Dask is an optional extra
-(``pip install "schedforge[dask]"``) imported only when asked for.
+oversubscribe the machine.  Dask is an optional extra (:data:`DASK_INSTALL_HINT`)
+imported only when asked for.
 """
 
 from __future__ import annotations
@@ -37,6 +37,8 @@ from typing import Any
 from .errors import InputError
 
 __all__ = [
+    "DASK_INSTALL_HINT",
+    "DASK_WORKER_TIMEOUT_S",
     "EXECUTOR_KINDS",
     "THREAD_ENV_VARS",
     "DaskExecutor",
@@ -44,6 +46,7 @@ __all__ = [
     "ProcessExecutor",
     "SerialExecutor",
     "TaskLost",
+    "check_scheduler_address",
     "make_executor",
     "single_thread_env",
 ]
@@ -269,15 +272,59 @@ class ProcessExecutor(Executor):
 
 
 # -- Dask distributed --------------------------------------------------------------
+#: How to install the optional Dask extra (schedforge is installed from its checkout).
+DASK_INSTALL_HINT = (
+    'install it with pip install "dask[distributed]>=2024.1" (or, from the schedforge '
+    'checkout, pip install -e ".[dask]")'
+)
+
+
 def _import_distributed() -> Any:
     try:
         import distributed
     except ImportError as exc:
         raise InputError(
             "--executor",
-            f"dask needs the optional extra: pip install 'schedforge[dask]' (import failed: {exc})",
+            f"dask is not installed ({exc}); {DASK_INSTALL_HINT}",
         ) from None
     return distributed
+
+
+#: Seconds to wait for a first Dask worker, or with no worker left during a sweep.
+DASK_WORKER_TIMEOUT_S = 60.0
+#: Address schemes Dask's communication layer knows.
+DASK_SCHEMES = ("tcp", "tls", "inproc", "ucx", "ws", "wss")
+
+
+def check_scheduler_address(address: str) -> str:
+    """Check that ``address`` looks like a Dask scheduler address; return it.
+
+    ``scheme://host:port`` with a scheme of :data:`DASK_SCHEMES`, or ``host:port``.
+
+    Raises
+    ------
+    InputError
+        Naming ``--scheduler``.
+    """
+    import urllib.parse
+
+    shown = address if len(address) <= 80 else address[:77] + "..."
+    rule = f"must be a Dask scheduler address such as tcp://host:8786, got {shown!r}"
+    text = address.strip()
+    if not text or any(c.isspace() for c in text):
+        raise InputError("--scheduler", rule)
+    if "://" not in text:
+        text = f"tcp://{text}"
+    try:
+        parts = urllib.parse.urlsplit(text)
+        port = parts.port
+    except ValueError:
+        raise InputError("--scheduler", rule) from None
+    if parts.scheme not in DASK_SCHEMES or (parts.scheme != "inproc" and not parts.hostname):
+        raise InputError("--scheduler", rule)
+    if parts.scheme in ("tcp", "tls") and port is None:
+        raise InputError("--scheduler", f"{rule} (the port is missing)")
+    return address
 
 
 class DaskExecutor(Executor):
@@ -297,6 +344,10 @@ class DaskExecutor(Executor):
         past that the item is yielded as :class:`TaskLost`.
     connect_timeout_s : float, optional
         How long to wait for ``scheduler``.
+    worker_timeout_s : float, optional
+        How long to wait for a first worker when the cluster has none, and how
+        long a sweep waits with no worker at all (all died) before the
+        remaining items are yielded as :class:`TaskLost`.
     """
 
     kind = "dask"
@@ -308,14 +359,19 @@ class DaskExecutor(Executor):
         *,
         retries: int = 2,
         connect_timeout_s: float = 20.0,
+        worker_timeout_s: float = DASK_WORKER_TIMEOUT_S,
     ) -> None:
         if (scheduler is None) == (dask_local is None):
             raise InputError(
                 "--executor dask", "needs exactly one of --scheduler ADDRESS or --dask-local N"
             )
+        if scheduler is not None:
+            check_scheduler_address(scheduler)
         distributed = _import_distributed()
         self.retries = int(retries)
+        self.worker_timeout_s = float(worker_timeout_s)
         self._cluster = None
+        self._client = None
         if dask_local is not None:
             with single_thread_env():
                 self._cluster = distributed.LocalCluster(
@@ -329,12 +385,24 @@ class DaskExecutor(Executor):
             address = scheduler
         try:
             self._client = distributed.Client(address, timeout=connect_timeout_s)
-        except (OSError, TimeoutError) as exc:
+        except (OSError, TimeoutError, ValueError, TypeError) as exc:
             self.close()
             raise InputError(
-                "--scheduler", f"could not connect to a Dask scheduler at {address!r}: {exc}"
+                "--scheduler",
+                f"could not connect to a Dask scheduler at {address!r}: "
+                f"{type(exc).__name__}: {str(exc)[:200]}",
             ) from None
         self.address = address
+        try:
+            self._client.wait_for_workers(1, timeout=self.worker_timeout_s)
+        except (TimeoutError, OSError):
+            self.close()
+            raise InputError(
+                "--scheduler",
+                f"names a Dask scheduler ({address}) with no workers: none joined within "
+                f"{self.worker_timeout_s:g} s; start workers for it (they need the same "
+                "schedforge installed) or use --dask-local N",
+            ) from None
         nthreads = self._client.nthreads()
         self.workers = max(1, sum(nthreads.values()))
 
@@ -343,27 +411,67 @@ class DaskExecutor(Executor):
         where = "LocalCluster" if self._cluster is not None else self.address
         return f"dask {where} ({self.workers} worker threads)"
 
+    def _n_workers(self) -> int:
+        try:
+            return len(self._client.scheduler_info().get("workers", {}))
+        except Exception:  # scheduler gone: counts as no worker
+            return 0
+
     def map_unordered(
         self, fn: Callable[[Any], Any], items: Iterable[Any]
     ) -> Iterator[tuple[Any, Any]]:
-        """See :meth:`Executor.map_unordered`."""
+        """See :meth:`Executor.map_unordered`.
+
+        When the cluster has had no worker for ``worker_timeout_s`` (all died),
+        the items not finished are yielded as :class:`TaskLost`.
+        """
         distributed = _import_distributed()
         items = list(items)
         futures = [
             self._client.submit(fn, item, pure=False, retries=self.retries) for item in items
         ]
         index = {fut.key: i for i, fut in enumerate(futures)}
+        pending = set(futures)
+        idle_since: float | None = None
+        poll = min(5.0, max(0.1, self.worker_timeout_s / 4))
         try:
-            for fut in distributed.as_completed(futures):
-                item = items[index[fut.key]]
+            while pending:
                 try:
-                    result = fut.result()
-                except distributed.KilledWorker as exc:
-                    result = TaskLost(f"Dask workers died running it: {exc}")
-                yield item, result
-                fut.release()
+                    done = set(
+                        distributed.wait(
+                            list(pending), timeout=poll, return_when="FIRST_COMPLETED"
+                        ).done
+                    )
+                except TimeoutError:
+                    done = set()
+                if not done:
+                    if self._n_workers() > 0:
+                        idle_since = None
+                        continue
+                    now = time.monotonic()
+                    idle_since = now if idle_since is None else idle_since
+                    if now - idle_since < self.worker_timeout_s:
+                        continue
+                    reason = (
+                        f"no Dask worker left for {self.worker_timeout_s:g} s (all died or "
+                        "left); rerun when the cluster has workers"
+                    )
+                    for fut in list(pending):
+                        yield items[index[fut.key]], TaskLost(reason)
+                    self._client.cancel(list(pending))
+                    return
+                idle_since = None
+                for fut in done:
+                    pending.discard(fut)
+                    item = items[index[fut.key]]
+                    try:
+                        result = fut.result()
+                    except distributed.KilledWorker as exc:
+                        result = TaskLost(f"Dask workers died running it: {exc}")
+                    yield item, result
+                    fut.release()
         except BaseException:
-            self._client.cancel(futures)
+            self._client.cancel(list(pending))
             raise
 
     def close(self) -> None:

@@ -13,11 +13,17 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import IO, Any
 
-__all__ = ["atomic_write", "atomic_write_bytes", "atomic_write_text"]
+__all__ = [
+    "atomic_write",
+    "atomic_write_all",
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "writable_folder_problem",
+]
 
 _MODES = ("w", "wt", "wb")
 
@@ -106,3 +112,71 @@ def atomic_write_text(path: str | os.PathLike[str], text: str, *, encoding: str 
     """Write ``text`` to ``path`` atomically (see :func:`atomic_write`)."""
     with atomic_write(path, "w", encoding=encoding) as fh:
         fh.write(text)
+
+
+def atomic_write_all(
+    outputs: Sequence[tuple[str | os.PathLike[str], Callable[[IO[bytes]], None]]],
+) -> None:
+    """Write several files so that either all of them appear or none does.
+
+    Parameters
+    ----------
+    outputs : sequence of (path, writer)
+        Each ``writer(fh)`` writes the content of ``path`` to a binary file
+        object.  Every content is written to a temporary file beside its
+        target first; only when all of them succeeded are they renamed over
+        their targets.
+
+    Notes
+    -----
+    A failure while writing any content removes every temporary file and
+    leaves every target untouched.  (The renames themselves, within one file
+    system, do not fail in practice.)
+    """
+    temps: list[tuple[Path, Path]] = []
+    try:
+        for path, writer in outputs:
+            target = Path(path)
+            folder = target.parent if str(target.parent) else Path(".")
+            fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
+            tmp = Path(tmp_name)
+            temps.append((tmp, target))
+            with os.fdopen(fd, "wb") as fh:
+                writer(fh)
+                fh.flush()
+                os.fsync(fh.fileno())
+            _set_default_permissions(tmp)
+        for tmp, target in temps:
+            os.replace(tmp, target)
+    except BaseException:
+        for tmp, _ in temps:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+        raise
+
+
+def writable_folder_problem(folder: str | os.PathLike[str]) -> str | None:
+    """Why a file cannot be created in ``folder``, or ``None`` when it can.
+
+    The folder is tested by creating (and removing) an empty temporary file in
+    it, which also catches read-only file systems and folders where even the
+    super-user cannot write.
+    """
+    f = Path(folder) if str(folder) else Path(".")
+    if not f.exists():
+        missing = f
+        while not missing.parent.exists() and missing.parent != missing:
+            missing = missing.parent
+        if missing.parent.exists() and not missing.parent.is_dir():
+            return f"{str(missing.parent)!r} is a file, not a folder"
+        return f"{str(f)!r} does not exist"
+    if not f.is_dir():
+        return f"{str(f)!r} is a file, not a folder"
+    try:
+        fd, name = tempfile.mkstemp(prefix=".schedforge-probe.", dir=f)
+    except OSError as exc:
+        return f"cannot write in {str(f)!r} ({exc.strerror or exc})"
+    os.close(fd)
+    with contextlib.suppress(OSError):
+        os.unlink(name)
+    return None

@@ -334,7 +334,12 @@ def predicted_coefficient(system: Any, schedule: Schedule, **kwargs: Any) -> Pre
     if getattr(system, "closed", False):
         k, fk1, _ = _end_order(schedule)
         return Prediction(
-            math.nan, k, fk1, "not available", "closed system: no steady state to relax to"
+            math.nan,
+            k,
+            fk1,
+            "not available",
+            "closed system: no steady state to relax to; the error law is "
+            "tf^-(min(k_start,k_end)+1) and its coefficient is not predicted",
         )
     dim = int(getattr(getattr(system, "hamiltonian", None), "dim", 0) or 0)
     if dim > MAX_DIM:

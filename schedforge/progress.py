@@ -240,6 +240,8 @@ class AnnealProgress:
         Monotonic clock in seconds (injectable for tests).
     delay, bar_interval, line_interval : float, optional
         Seconds.
+    note : str, optional
+        Appended to every progress line (e.g. why this anneal is slow).
     """
 
     def __init__(
@@ -251,7 +253,9 @@ class AnnealProgress:
         delay: float = 2.0,
         bar_interval: float = 0.5,
         line_interval: float = 30.0,
+        note: str = "",
     ) -> None:
+        self.note = note
         self.stream = sys.stderr if stream is None else stream
         self.mode = _resolve_mode(mode, self.stream)
         self._clock = clock
@@ -277,6 +281,8 @@ class AnnealProgress:
             f"anneal x = {self._x:.3f} (pass {self.passes}), "
             f"{format_duration(now - self._t0)} so far"
         )
+        if self.note:
+            text += f"; {self.note}"
         if self.mode == "bar":
             self.stream.write(f"\r{text}\x1b[K")
             self._drawn = True

@@ -45,6 +45,7 @@ from .analysis import (
     read_points_csv,
     write_fit_csv,
 )
+from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR, dynamics_kind, law_time_scale_ns
 from .errors import InputError
 from .fileio import atomic_write_bytes, atomic_write_text
 from .plotting.scaling import (
@@ -63,6 +64,7 @@ __all__ = [
     "SweepAnalysis",
     "analyse_sweep_dir",
     "load_sweep_spec",
+    "render_noise_report",
     "spec_to_toml",
     "write_report",
 ]
@@ -78,6 +80,7 @@ CAUTION = (
 GAP_PLOT_MAX_DIM = 16
 #: Points along s of the gap plot.
 GAP_POINTS = 65
+_FIT_TEXT_COLS = ("family", "variant", "error_law", "verdict", "message")
 SPEC_NAME = "spec.toml"
 FIT_NAME = "fit.csv"
 REPORT_NAME = "report.html"
@@ -218,18 +221,63 @@ def _make_figures(
 
 
 # -- HTML ---------------------------------------------------------------------------
+def _law_paragraph(spec: Spec) -> str:
+    """Which error law the fits use, in words, with its sources."""
+    if dynamics_kind(spec) == "closed":
+        return (
+            "Closed (unitary) dynamics: the boundary terms of both ends count, so the error "
+            "law is tf<sup>&minus;(min(k_start, k_end)+1)</sup> (Lidar, Rezakhani and "
+            "Hamma, J. Math. Phys. 50, 102106 (2009), cited from memory; checked on a "
+            "closed qubit in the test suite). With equal orders at both ends the two terms "
+            "interfere and the local slopes oscillate."
+        )
+    return (
+        "Open (Davies) dynamics: relaxation erases the start, so the error law is "
+        "tf<sup>&minus;(k_end+1)</sup> (Avron, Fraas, Graf and Grech 2012; Campos Venuti, "
+        "Albash, Lidar and Zanardi 2016; cited from memory)."
+    )
+
+
 _CSS = """
-body { font-family: sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
-table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0 1.5em; }
-th, td { border: 1px solid #bbb; padding: 3px 7px; text-align: right; }
-th { background: #eee; }
+body { font-family: sans-serif; max-width: 1200px; margin: 2em auto; padding: 0 1em;
+       color: #222; line-height: 1.4; }
+.scroll { overflow-x: auto; margin: 0.5em 0 1.5em; }
+table { border-collapse: collapse; font-size: 0.85em; }
+th, td { border: 1px solid #bbb; padding: 3px 7px; text-align: right; vertical-align: top; }
+th { background: #eee; font-weight: 600; text-align: center; }
 td.t { text-align: left; }
+td.msg { text-align: left; min-width: 13em; max-width: 36em; }
+td.n { white-space: nowrap; }
+tr.detail td { text-align: left; color: #444; border-top: none; padding-left: 2em; }
 .caution { border: 2px solid #c33; background: #fff3f3; padding: 0.8em 1em; }
-.plots img { max-width: 48%; margin: 0.5%; border: 1px solid #ddd; }
-img.wide { max-width: 80%; }
+.summary { font-size: 1.05em; }
+.plots { display: flex; flex-wrap: wrap; gap: 1%; }
+.plots img { width: 49%; margin: 0.5% 0; border: 1px solid #ddd; box-sizing: border-box; }
+img.wide { max-width: 100%; width: 760px; }
 pre { background: #f6f6f6; padding: 0.8em; overflow-x: auto; font-size: 0.85em; }
-.agrees { color: #060; } .disagrees { color: #a00; }
+.agrees { color: #060; } .disagrees { color: #a00; } .failed { color: #a00; }
+@media (max-width: 800px) { .plots img { width: 100%; } }
 """
+
+#: Column headers of the report's tables (the CSV column name is the cell's tooltip).
+_HEADERS = {
+    "k_start": "k start",
+    "k_end": "k end",
+    "slope_stderr": "std. error",
+    "expected_slope": "expected slope",
+    "regime_tf_ns": "regime tf (ns)",
+    "n_points": "points in regime",
+    "error_law": "error law",
+    "coefficient_fit": "C<sub>k</sub> fitted (ns<sup>p</sup>)",
+    "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>p</sup>)",
+    "C_k": "C<sub>k</sub>",
+    "tf_ns": "tf (ns)",
+    "trace_distance": "trace distance",
+    "ground_infidelity": "ground infidelity",
+    "excess_energy_ghz": "excess energy (GHz)",
+    "wall_s": "wall time (s)",
+}
+_MESSAGE_COLUMNS = ("message", "warnings")
 
 
 def _fmt(v: Any) -> str:
@@ -239,20 +287,61 @@ def _fmt(v: Any) -> str:
 
 
 def _html_table(
-    columns: Sequence[str], rows: Sequence[Mapping[str, Any]], text_cols: Sequence[str] = ()
+    columns: Sequence[str],
+    rows: Sequence[Mapping[str, Any]],
+    text_cols: Sequence[str] = (),
+    *,
+    detail: str | None = None,
 ) -> str:
-    out = ["<table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in columns) + "</tr>"]
+    """A table in a sideways-scrolling box; ``detail`` (a long text column) goes on a
+    full-width line under each row instead of a narrow column."""
+    columns = [c for c in columns if c != detail]
+    head = "".join(
+        f'<th title="{html.escape(c)}">{_HEADERS.get(c, html.escape(c))}</th>' for c in columns
+    )
+    out = ['<div class="scroll"><table><tr>' + head + "</tr>"]
     for r in rows:
         cells = []
         for c in columns:
-            cls = ' class="t"' if c in text_cols else ""
             val = r.get(c, "")
-            if c == "verdict":
+            if c in _MESSAGE_COLUMNS:
+                cls = ' class="msg"'
+            elif c == "verdict" or c == "status":
                 cls = f' class="t {html.escape(str(val)).replace(" ", "-")}"'
+            elif c in text_cols:
+                cls = ' class="t"'
+            else:
+                cls = ' class="n"'
             cells.append(f"<td{cls}>{_fmt(val)}</td>")
         out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</table>")
+        if detail is not None and r.get(detail):
+            out.append(
+                f'<tr class="detail"><td colspan="{len(columns)}">'
+                f"{_HEADERS.get(detail, html.escape(detail))}: {_fmt(r[detail])}</td></tr>"
+            )
+    out.append("</table></div>")
     return "\n".join(out)
+
+
+def _fit_display_row(row: Mapping[str, Any]) -> dict[str, Any]:
+    """A fit.csv row with the regime's two ends in one cell (``3000 to 1e+06``)."""
+    out = dict(row)
+    lo, hi = row.get("regime_tf_min_ns"), row.get("regime_tf_max_ns")
+    both = all(isinstance(v, float) and math.isfinite(v) for v in (lo, hi))
+    out["regime_tf_ns"] = f"{lo:.4g} to {hi:.4g}" if both else math.nan
+    return out
+
+
+def _points_summary(rows: Sequence[Mapping[str, Any]]) -> str:
+    """``"15 points: 11 ok, 4 failed"`` (every status that occurs, counted)."""
+    counts: dict[str, int] = {}
+    for r in rows:
+        status = str(r.get("status", "") or "unknown")
+        counts[status] = counts.get(status, 0) + 1
+    parts = [f"{n} {status}" for status, n in sorted(counts.items(), key=lambda i: i[0] != "ok")]
+    return f"{len(rows)} point{'s' if len(rows) != 1 else ''}" + (
+        ": " + ", ".join(parts) if parts else ""
+    )
 
 
 def _img(name: str, png: bytes, wide: bool = False) -> str:
@@ -274,16 +363,19 @@ def render_report(
 ) -> str:
     """The report as one self-contained HTML string (plots as base64 PNG)."""
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    fit_cols = ["family", "variant", "k_start", "k_end", "slope", "slope_stderr",
-                "expected_slope", "regime_tf_min_ns", "regime_tf_max_ns", "n_points",
+    fit_cols = ["family", "variant", "k_start", "k_end", "error_law", "slope", "slope_stderr",
+                "expected_slope", "regime_tf_ns", "n_points",
                 "coefficient_fit", "coefficient_predicted", "verdict", "message"]  # fmt: skip
+    fit_rows = [_fit_display_row(f.row()) for f in fits]
     pred_rows = [
         {"family": k[0], "k_start": k[1], "k_end": k[2], "C_k": p.coefficient,
          "unit": f"ns^{p.k + 1}" if p.ok else "", "status": p.status, "message": p.message}
         for k, p in sorted(predictions.items())
     ]  # fmt: skip
     point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
-                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s"]  # fmt: skip
+                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s",
+                  "warnings"]  # fmt: skip
+    warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
         "<!DOCTYPE html>",
@@ -294,20 +386,42 @@ def render_report(
         f"{html.escape(spec.source or 'given in Python')}.</p>",
         f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
     ]
+    n_bad = sum(1 for r in rows if str(r.get("status", "")) != "ok")
+    summary = html.escape(_points_summary(rows))
+    if n_bad:
+        summary += (
+            f' <span class="failed">({n_bad} did not succeed: their numbers are NaN and '
+            "never fitted; see the Points table)</span>"
+        )
+    parts.append(f'<p class="summary"><b>Points.</b> {summary}.</p>')
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    agrees = any(f.verdict == "agrees" for f in fits)
     parts += [
         "<h2>Scaling fits</h2>",
-        "<p>Verdict <i>agrees</i>: fitted slope within "
-        f"&plusmn;{DEFAULT_SLOPE_TOL} of &minus;(k_end+1) (common practice, no source). "
+        f"<p>{_law_paragraph(spec)} "
+        + (
+            "Verdict <i>agrees</i> needs all of: "
+            if agrees
+            else "No fit agrees with its law; the verdict <i>agrees</i> would need all of: "
+        )
+        + f"fitted slope within &plusmn;{DEFAULT_SLOPE_TOL} of the law's (common practice, "
+        "no source); steady "
+        f"local slopes; every regime point at tf &ge; {RELAXATION_FACTOR:g} &times; 1/gap "
+        "(final relaxation time of an open system, adiabatic time 1/min gap of H(s) of a "
+        "closed one); and, when C<sub>k</sub> is predicted, a fitted coefficient within "
+        f"{COEFFICIENT_RTOL:.0%} of it. Otherwise the verdict is <i>regime not "
+        "reached</i> with the tf range to add. The column error law names the law used. "
         "Points at or below the numerical floor "
         f"({DEFAULT_FLOOR_FACTOR:g} &times; numerics.atol = "
         f"{DEFAULT_FLOOR_FACTOR * spec.numerics.atol:.2g}) and failed points are never "
         "fitted; the regime is the longest run of points at the large-tf end whose local "
         f"slopes lie within a band of width {DEFAULT_REGIME_TOL} (widened by each slope's "
         "noise). No slope is given where the regime was not reached. "
-        "coefficient_fit is the intercept of err&middot;tf<sup>k+1</sup> against 1/tf over "
-        "the regime; coefficient_predicted is C<sub>k</sub> from the final generator.</p>",
-        _html_table(fit_cols, [f.row() for f in fits], ("family", "variant", "verdict", "message")),
+        "C<sub>k</sub> fitted is the intercept of err&middot;tf<sup>p</sup> against 1/tf "
+        "over the regime, with p = &minus;(expected slope) the law's exponent; C<sub>k</sub> "
+        "predicted is from the final generator; both in ns<sup>p</sup> (err = C<sub>k</sub> "
+        "/ tf<sup>p</sup>, tf in ns).</p>",
+        _html_table(fit_cols, fit_rows, (*_FIT_TEXT_COLS, "regime_tf_ns"), detail="message"),
         "<h2>Predicted leading coefficients</h2>",
         "<p>C<sub>k</sub> = ||(L<sub>1</sub><sup>+</sup>)<sup>k+1</sup> "
         "d&sigma;/ds(1)||<sub>1</sub>"
@@ -327,8 +441,14 @@ def render_report(
         "<h2>Gaps along the anneal</h2>",
         _img("gap", pngs["gap"], wide=True),
         "<h2>Points</h2>",
-        f"<details><summary>{len(rows)} points</summary>",
-        _html_table(point_cols, rows, ("family", "variant", "status")),
+        f"<p>{len(warned)} of {len(rows)} points carry warnings of their own"
+        + (" (listed here; the whole table is below)" if warned else "")
+        + ".</p>",
+        _html_table(point_cols, warned, ("family", "variant", "status", "warnings"))
+        if warned
+        else "",
+        f"<details><summary>{html.escape(_points_summary(rows))}</summary>",
+        _html_table(point_cols, rows, ("family", "variant", "status", "warnings")),
         "</details>",
         "<h2>Spec</h2>",
         f"<pre>{html.escape(spec_to_toml(spec))}</pre>",
@@ -395,11 +515,15 @@ def analyse_sweep_dir(
         for w in curve_warnings(system.hamiltonian.curves, k_end):
             if f"Device curves: {w}" not in warnings:
                 warnings.append(f"Device curves: {w}")
+    dynamics = dynamics_kind(system)
+    time_scale = law_time_scale_ns(system)
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,
         metric=metric,
         predicted={k: p.coefficient for k, p in predictions.items()},
+        dynamics=dynamics,
+        time_scale_ns=time_scale,
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")
@@ -425,3 +549,133 @@ def analyse_sweep_dir(
         plots=plot_paths,
         table=format_fit_table(fits),
     )
+
+
+# -- control errors: the noise-ensemble report (issue 17) -------------------------
+def _label_schedule(fam: str, k0: float, k1: float) -> str:
+    return fam if fam == "linear" else f"{fam} k={k0:g}/{k1:g}"
+
+
+def noise_figures(outcome: Any, precision: Any = None) -> dict[str, bytes]:
+    """PNG figures of a noise ensemble: histograms at the longest tf, spread vs tf, and
+    the probability curve of the static study (when ``precision`` is given)."""
+    from .plotting.noise import plot_ensemble_histograms, plot_flip_curve, plot_spread_vs_tf
+
+    rows = outcome.rows
+    pngs: dict[str, bytes] = {}
+    draws = [r for r in rows if r["draw"] >= 0]
+    if draws:
+        tf_max = max(r["tf_ns"] for r in draws)
+        for key, xlabel, log in (
+            ("trace_distance", "trace distance to the noisy steady state", True),
+            ("intended_ground_probability", "probability of the intended ground space", False),
+        ):
+            values: dict[str, list[float]] = {}
+            for r in draws:
+                if r["tf_ns"] == tf_max:
+                    name = _label_schedule(r["family"], r["k_start"], r["k_end"])
+                    values.setdefault(name, []).append(r[key])
+            fig = plot_ensemble_histograms(values, f"{xlabel} (tf = {tf_max:g} ns)", log=log)
+            pngs[f"histogram_{key}"] = _png(fig)
+        nominal = {
+            (r["family"], r["k_start"], r["k_end"]): r["nominal_trace_distance"]
+            for r in outcome.per_point
+            if r["tf_ns"] == tf_max
+        }
+        relative: dict[str, list[float]] = {}
+        for r in draws:
+            ref = nominal.get((r["family"], r["k_start"], r["k_end"]), math.nan)
+            if r["tf_ns"] == tf_max and ref > 0:
+                name = _label_schedule(r["family"], r["k_start"], r["k_end"])
+                relative.setdefault(name, []).append(r["trace_distance"] / ref - 1.0)
+        fig = plot_ensemble_histograms(
+            relative,
+            f"trace distance / noiseless - 1 (tf = {tf_max:g} ns)",
+            log=False,
+        )
+        pngs["histogram_relative_trace_distance"] = _png(fig)
+    for key, ylabel in (
+        ("trace_distance_spread", "spread (std / mean) of the trace distance"),
+        ("intended_probability_spread", "spread of the intended ground-state probability"),
+    ):
+        series: dict[str, tuple[list[float], list[float]]] = {}
+        for r in outcome.per_point:
+            name = _label_schedule(r["family"], r["k_start"], r["k_end"])
+            tf, vals = series.setdefault(name, ([], []))
+            tf.append(r["tf_ns"])
+            vals.append(r[key])
+        pngs[f"spread_{key}"] = _png(plot_spread_vs_tf(series, ylabel))
+    if precision is not None:
+        pngs["precision_curve"] = _png(plot_flip_curve(precision))
+    return pngs
+
+
+def render_noise_report(
+    spec: Spec,
+    outcome: Any,
+    pngs: Mapping[str, bytes],
+    *,
+    notes: Sequence[str] = (),
+    title: str = "schedforge noise-ensemble report",
+) -> str:
+    """The noise-ensemble report as one self-contained HTML string.
+
+    Parameters
+    ----------
+    spec : Spec
+        With its ``[noise]`` section.
+    outcome : NoiseSweepOutcome
+        From :func:`schedforge.noise_ensemble.run_noise_sweep`.
+    pngs : mapping
+        From :func:`noise_figures`.
+    notes : sequence of str
+        Extra paragraphs (failed points, fallbacks...).
+    """
+    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    noise = spec.noise
+    model = (
+        ""
+        if noise is None
+        else (
+            f"Noise model: Gaussian errors on {', '.join(noise.terms) or 'no coefficient'} with "
+            f"standard deviation {noise.level:g} of the largest |h_i|, |J_ij|; relative "
+            f"amplitude errors of A(s) and B(s) with standard deviation "
+            f"{noise.amplitude_level:g}; {noise.draws} draws from seed {noise.seed}."
+        )
+    )
+    sched_cols = ["family", "k_start", "k_end", "expected_slope", "nominal_slope",
+                  "nominal_verdict", "draws", "fitted", "agrees", "slope_mean",
+                  "slope_std"]  # fmt: skip
+    point_cols = ["family", "k_start", "k_end", "tf_ns", "draws", "ok",
+                  "nominal_trace_distance", "trace_distance_mean", "trace_distance_std",
+                  "trace_distance_spread", "nominal_intended_probability",
+                  "intended_probability_mean", "intended_probability_std",
+                  "intended_probability_spread"]  # fmt: skip
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f"<p>schedforge {__version__}, generated {now} (UTC). Spec: "
+        f"{html.escape(spec.source or 'given in Python')}.</p>",
+        f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
+        f"<p>{html.escape(model)}</p>",
+    ]
+    parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    parts += [
+        "<h2>Control errors: which schedule degrades least</h2>",
+        "<p>Trace distance: to the final steady state of each draw's own (noisy) "
+        "problem. Intended ground-state probability: weight of rho(tf) on the ground "
+        "space of the noiseless H(1). Spread: standard deviation over mean across the "
+        "draws whose simulation succeeded. Per draw, the trace distance against tf is "
+        "fitted like a sweep (<i>agrees</i>: the designed slope -(k_end + 1) survives "
+        "for that draw).</p>",
+        "<h3>Error slope per draw</h3>",
+        _html_table(sched_cols, outcome.per_schedule, ("family", "nominal_verdict")),
+        "<h3>Distribution per schedule and anneal time</h3>",
+        _html_table(point_cols, outcome.per_point, ("family",)),
+        "<h3>Figures</h3>",
+    ]
+    parts += [_img(name, png) for name, png in pngs.items()]
+    parts.append("</body></html>")
+    return "\n".join(parts)

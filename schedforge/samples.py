@@ -4,28 +4,41 @@
 B(s(t)) on a time grid that contains t = 0 and t = tf exactly, either at a
 sample rate (the grid of an arbitrary waveform generator) or at a number of
 evenly spaced points.  :func:`write_samples_csv` writes the table with ``#``
-metadata lines and repr-exact floats; :func:`read_samples_csv` reads it back,
-checking every line.
+metadata lines and shortest round-trip floats; :func:`read_samples_csv` reads it
+back, checking every line.
 
-CSV layout::
+CSV layout: always :data:`HEADER_LINES` (12) ``#`` lines, one per key of
+:data:`HEADER_KEYS` after the title (``none`` where a key does not apply), then
+the column names, then one row per sample::
 
-    # schedforge schedule samples
-    # family: beta
-    # ...                       (one "# key: value" line per metadata item)
+    # schedforge schedule samples: 12 '#' lines, then the column names, then the samples
+    # spec: builtin:driven-qubit
+    # schedule: family = "beta", k_start = 0, k_end = 2, tf_ns = 1000
+    # ...
     t_ns,s,ds_dt_per_ns,A_ghz,B_ghz
     0,0,0.003,3.5,0
     ...
+
+so every file reads with the same line, e.g. ``np.genfromtxt(path, delimiter=",",
+names=True, skip_header=12)`` or ``pandas.read_csv(path, skiprows=12)``.
+Parameter lines (``schedule``, ``device``, ``waveform``, ``waveform_check``) are
+the body of a TOML inline table (:func:`toml_fields`, read back with
+:func:`parse_fields`).  Numbers are written as the shortest decimal that reads
+back to the identical double (Python's ``repr``): no digits beyond what the value
+holds, and an exact round trip.  With a DAC (``dac_bits``) a sixth column
+``dac_code`` holds the integer converter code j of s = j / (2^bits - 1).
 """
 
 from __future__ import annotations
 
 import math
 import os
+import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -33,23 +46,47 @@ from numpy.typing import NDArray
 from . import __version__
 from .device import DeviceCurves
 from .errors import InputError
-from .fileio import atomic_write
+from .fileio import atomic_write_all
 from .schedules import Schedule
 
 __all__ = [
     "COLUMNS",
+    "DAC_COLUMN",
     "DEFAULT_POINTS",
+    "HEADER_KEYS",
+    "HEADER_LINES",
     "MAX_SAMPLES",
     "UNITS",
     "SampleTable",
+    "parse_fields",
     "read_samples_csv",
     "sample_schedule",
     "samples_metadata",
+    "toml_fields",
+    "write_samples",
     "write_samples_csv",
 ]
 
 #: Column names of the samples table and CSV header, in order.
 COLUMNS: tuple[str, ...] = ("t_ns", "s", "ds_dt_per_ns", "A_ghz", "B_ghz")
+#: Optional sixth column: the DAC code j of s = j / (2^bits - 1).
+DAC_COLUMN = "dac_code"
+#: Keys of the ``# key: value`` header lines, in order; every file has all of them.
+HEADER_KEYS: tuple[str, ...] = (
+    "spec",
+    "schedule",
+    "device",
+    "grid",
+    "export",
+    "waveform",
+    "waveform_check",
+    "columns",
+    "caution",
+    "schedforge_version",
+    "created_utc",
+)
+#: Number of ``#`` lines before the column names in every samples CSV (title + keys).
+HEADER_LINES = 1 + len(HEADER_KEYS)
 #: Units line written into every CSV file.
 UNITS = "t_ns in ns; s dimensionless; ds_dt_per_ns in 1/ns; A_ghz and B_ghz as E/h in GHz"
 #: Number of evenly spaced points when neither a rate nor a count is given.
@@ -57,7 +94,11 @@ DEFAULT_POINTS = 1001
 #: Largest table :func:`sample_schedule` builds (about 400 MB of floats).
 MAX_SAMPLES = 10_000_000
 
-_TITLE = "schedforge schedule samples"
+_TITLE = (
+    f"schedforge schedule samples: {HEADER_LINES} '#' lines, then the column names, "
+    "then the samples"
+)
+_CAUTION = "check against the device's documented limits and the lab's practice before playing"
 
 
 @dataclass(frozen=True)
@@ -75,8 +116,10 @@ class SampleTable:
     A_ghz, B_ghz : ndarray
         Device energies A(s(t)) and B(s(t)), E/h in GHz.
     metadata : Mapping[str, str]
-        Free-form ``key: value`` notes (grid description, or the header of a
+        ``key: value`` notes (keys of :data:`HEADER_KEYS`, or the header of a
         file read back).
+    dac_code : ndarray of int, optional
+        The converter code j of each ``s = j / (2^bits - 1)`` (quantized waveforms).
     """
 
     t_ns: NDArray[np.float64]
@@ -85,6 +128,7 @@ class SampleTable:
     A_ghz: NDArray[np.float64]
     B_ghz: NDArray[np.float64]
     metadata: Mapping[str, str] = field(default_factory=dict)
+    dac_code: NDArray[np.int64] | None = None
 
     def __post_init__(self) -> None:
         n = None
@@ -97,10 +141,21 @@ class SampleTable:
             n = arr.size
             arr.setflags(write=False)
             object.__setattr__(self, name, arr)
+        if self.dac_code is not None:
+            code = np.array(self.dac_code, dtype=np.int64)
+            if code.shape != (n,):
+                raise ValueError("SampleTable.dac_code must have the length of the columns")
+            code.setflags(write=False)
+            object.__setattr__(self, "dac_code", code)
         object.__setattr__(self, "metadata", dict(self.metadata))
 
     def __len__(self) -> int:
         return int(self.t_ns.size)
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """Column names as written: :data:`COLUMNS`, plus ``dac_code`` when present."""
+        return COLUMNS + ((DAC_COLUMN,) if self.dac_code is not None else ())
 
     def as_array(self) -> NDArray[np.float64]:
         """The table as an ``(n, 5)`` array in :data:`COLUMNS` order."""
@@ -124,7 +179,7 @@ def _time_grid(
                 f"gives about {steps + 1} samples over {tf_ns:g} ns, more than the "
                 f"limit of {MAX_SAMPLES}",
             )
-        t = np.arange(steps + 1, dtype=float) * dt
+        t = np.arange(steps + 1, dtype=float) / rate_gsps  # n / R, correctly rounded
         if t[-1] >= tf_ns * (1.0 - 1e-12):
             t[-1] = tf_ns  # tf is a whole number of sample periods
             last = dt
@@ -203,27 +258,115 @@ def sample_schedule(
 
 
 def samples_metadata(schedule: Schedule, tf_ns: float, curves: DeviceCurves) -> dict[str, str]:
-    """The notebook metadata of a sampled schedule: family, k, tf, device curves.
+    """The notebook metadata of a sampled schedule: schedule and device parameters.
 
     Returns
     -------
     dict
-        ``family``, ``k_start``, ``k_end`` and any other schedule parameters from
-        :meth:`Schedule.describe`, ``tf_ns``, and ``device.*`` entries from
-        :meth:`DeviceCurves.describe`.
+        ``schedule``: the parameters of :meth:`Schedule.describe` and ``tf_ns``;
+        ``device``: those of :meth:`DeviceCurves.describe`; each the body of a
+        TOML inline table (:func:`toml_fields`).
     """
-    meta = {key: _text(value) for key, value in schedule.describe().items()}
-    meta["tf_ns"] = _text(tf_ns)
-    for key, value in curves.describe().items():
-        meta[f"device.{key}"] = _text(value)
-    return meta
+    return {
+        "schedule": toml_fields({**schedule.describe(), "tf_ns": float(tf_ns)}),
+        "device": toml_fields(curves.describe()),
+    }
+
+
+def _toml_value(value: Any) -> str:
+    """One value in TOML syntax (numbers shortest round-trip, nested tables inline)."""
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    if isinstance(value, int | np.integer):
+        return str(int(value))
+    if isinstance(value, float | np.floating):
+        v = float(value)
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return str(int(v)) if v.is_integer() and abs(v) < 1e15 else repr(v)
+    if isinstance(value, Mapping):
+        return "{" + toml_fields(value) + "}"
+    if isinstance(value, list | tuple | np.ndarray):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    text = " ".join(str(value).split())
+    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+def toml_fields(values: Mapping[str, Any]) -> str:
+    """``key = value, ...``: the body of a TOML inline table, on one line.
+
+    Examples
+    --------
+    >>> toml_fields({"family": "beta", "k_end": 2.0, "tf_ns": 1000.0 / 3})
+    'family = "beta", k_end = 2, tf_ns = 333.3333333333333'
+    """
+    return ", ".join(f"{key} = {_toml_value(v)}" for key, v in values.items())
+
+
+def parse_fields(text: str) -> dict[str, Any]:
+    """Read back a :func:`toml_fields` line (``"none"`` gives an empty dict).
+
+    Raises
+    ------
+    InputError
+        When the text is not the body of a TOML inline table.
+    """
+    if text.strip() == "none":
+        return {}
+    try:
+        return dict(tomllib.loads(f"fields = {{{text}}}")["fields"])
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError("header", f"is not a list of key = value fields: {exc}") from None
 
 
 def _text(value: Any) -> str:
-    """One-line text of a metadata value (floats repr-exact)."""
+    """One-line text of a metadata value (floats shortest round-trip)."""
     if isinstance(value, float):
         return repr(value)
     return " ".join(str(value).split())
+
+
+def _header(table: SampleTable, metadata: Mapping[str, Any]) -> list[str]:
+    meta: dict[str, str] = {key: "none" for key in HEADER_KEYS}
+    unknown = [key for key in metadata if key not in HEADER_KEYS]
+    if unknown:
+        raise ValueError(f"unknown samples header key(s) {unknown}; known: {HEADER_KEYS}")
+    for source in (table.metadata, metadata):  # other notes of the table are not written
+        for key, value in source.items():
+            if key in HEADER_KEYS:
+                meta[key] = _text(value) or "none"
+    columns = UNITS
+    if table.metadata.get("columns"):
+        columns += "; " + _text(table.metadata["columns"])
+    if table.dac_code is not None:
+        columns += f"; {DAC_COLUMN} is the integer converter code j of s = j / (2^dac_bits - 1)"
+    meta["columns"] = columns
+    meta["caution"] = _CAUTION
+    meta["schedforge_version"] = __version__
+    meta["created_utc"] = datetime.now(UTC).isoformat(timespec="seconds")
+    lines = [f"# {_TITLE}"] + [f"# {key}: {value}" for key, value in meta.items()]
+    assert len(lines) == HEADER_LINES
+    return lines
+
+
+def write_samples(fh: IO[bytes], table: SampleTable, metadata: Mapping[str, Any]) -> None:
+    """Write a samples table as CSV to an open binary file (see :func:`write_samples_csv`)."""
+    fh.write(("\n".join([*_header(table, metadata), ",".join(table.columns)]) + "\n").encode())
+    data = table.as_array()
+    codes = None if table.dac_code is None else table.dac_code.tolist()
+    chunk = 65536
+    for start in range(0, len(table), chunk):
+        rows = data[start : start + chunk].tolist()
+        if codes is None:
+            lines = [",".join(map(repr, row)) for row in rows]
+        else:
+            lines = [
+                ",".join(map(repr, row)) + f",{code}"
+                for row, code in zip(rows, codes[start : start + chunk], strict=True)
+            ]
+        fh.write(("\n".join(lines) + "\n").encode())
 
 
 def write_samples_csv(
@@ -239,29 +382,17 @@ def write_samples_csv(
     table : SampleTable
         The samples.
     metadata : Mapping
-        Notebook entries (see :func:`samples_metadata`); ``table.metadata`` is
-        added, followed by the schedforge version, the UTC time (ISO 8601) and
-        the units.
+        Header entries, keys from :data:`HEADER_KEYS` (see
+        :func:`samples_metadata`); ``table.metadata`` supplies the others
+        (``grid``, ...).  Keys not given are written as ``none``; ``columns``
+        (units), ``caution``, the version and the UTC time are always filled in.
 
     Notes
     -----
-    Floats are written with ``%.17g``, which reads back to the identical double.
+    Always :data:`HEADER_LINES` ``#`` lines.  Floats are written as the shortest
+    decimal that reads back to the identical double (``repr``).
     """
-    meta: dict[str, str] = {key: _text(value) for key, value in metadata.items()}
-    for key, value in table.metadata.items():
-        meta.setdefault(key, _text(value))
-    meta["schedforge_version"] = __version__
-    meta["created_utc"] = datetime.now(UTC).isoformat(timespec="seconds")
-    meta["units"] = UNITS
-    for key in meta:
-        if ":" in key or not key.strip() or "\n" in key:
-            raise ValueError(f"metadata key {key!r} must be non-empty without ':'")
-    with atomic_write(path, "w", newline="\n") as fh:
-        fh.write(f"# {_TITLE}\n")
-        for key, value in meta.items():
-            fh.write(f"# {key}: {value}\n")
-        fh.write(",".join(COLUMNS) + "\n")
-        np.savetxt(fh, table.as_array(), fmt="%.17g", delimiter=",")
+    atomic_write_all([(path, lambda fh: write_samples(fh, table, metadata))])
 
 
 def read_samples_csv(path: str | os.PathLike[str]) -> SampleTable:
@@ -306,14 +437,14 @@ def read_samples_csv(path: str | os.PathLike[str]) -> SampleTable:
             continue
         if not header_seen:
             names = tuple(c.strip() for c in line.split(","))
-            if names != COLUMNS:
+            if names not in (COLUMNS, (*COLUMNS, DAC_COLUMN)):
                 raise InputError(where, f"must be the header {','.join(COLUMNS)}, got {line!r}")
             header_seen = True
             continue
         cells = line.split(",")
-        if len(cells) != len(COLUMNS):
+        if len(cells) != len(names):
             raise InputError(
-                where, f"must have {len(COLUMNS)} comma-separated numbers, got {len(cells)}"
+                where, f"must have {len(names)} comma-separated numbers, got {len(cells)}"
             )
         try:
             values = [float(c) for c in cells]
@@ -331,4 +462,10 @@ def read_samples_csv(path: str | os.PathLike[str]) -> SampleTable:
     if len(rows) < 2:
         raise InputError(str(p), f"must have at least 2 data rows, got {len(rows)}")
     data = np.array(rows, dtype=float)
-    return SampleTable(*(data[:, i] for i in range(len(COLUMNS))), metadata=meta)
+    codes = None
+    if len(names) > len(COLUMNS):
+        codes = data[:, len(COLUMNS)]
+        if not np.array_equal(codes, np.round(codes)):
+            raise InputError(str(p), f"column {DAC_COLUMN} must hold integers")
+        codes = codes.astype(np.int64)
+    return SampleTable(*(data[:, i] for i in range(len(COLUMNS))), metadata=meta, dac_code=codes)

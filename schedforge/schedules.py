@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import sys
 from abc import ABC, abstractmethod
 from collections.abc import Sequence
 from typing import Any
@@ -68,6 +69,9 @@ GEVREY_FLATNESS_CHECKED = 12
 #: Largest ``k_end`` of the ``poly`` and ``points`` families (the tail polynomial
 #: has degree 2 k_end + 2; beyond this its coefficients lose precision).
 MAX_POLY_K = 12
+
+#: log of the largest double (1.8e308).
+_LOG_DBL_MAX = math.log(sys.float_info.max)
 
 #: Points this far outside [0, 1] (rounding of t / tf) are clipped onto it.
 _X_SLACK = 1e-12
@@ -263,7 +267,7 @@ class Schedule(ABC):
         d = self.derivatives(np.array([x0]), max_check)[:, 0]
         n = 0
         for order in range(1, max_check + 1):
-            scale = max(1.0, float(math.factorial(order)))
+            scale = math.exp(min(math.lgamma(order + 1.0), _LOG_DBL_MAX))
             if np.isfinite(d[order]) and abs(d[order]) <= tol * scale:
                 n += 1
             else:
@@ -341,7 +345,12 @@ def _density_derivative_at_zero(p: float, q: float, m: int, log_norm: float) -> 
         if i < 0:
             return 0.0
         coeff = float(special.binom(q - 1.0, i)) * (-1.0) ** i
-        return coeff * math.factorial(m) * math.exp(-log_norm)
+        if coeff == 0.0:
+            return 0.0
+        log_mag = math.log(abs(coeff)) + math.lgamma(m + 1.0) - log_norm
+        if log_mag > _LOG_DBL_MAX:  # beyond double precision (only past the first nonzero)
+            return math.copysign(math.inf, coeff)
+        return coeff * math.exp(math.lgamma(m + 1.0) - log_norm)
     if m < e:
         return 0.0
     return math.copysign(math.inf, _falling(e, m))
@@ -370,7 +379,48 @@ class BetaSchedule(Schedule):
         self._a = 1.0 + float(self.k_start)
         self._b = 1.0 + float(self.k_end)
         self._log_norm = float(special.betaln(self._a, self._b))
+        self._check_representable()
         self._plans: dict[int, tuple[list[list[tuple[int, float]]], NDArray, NDArray]] = {}
+
+    @staticmethod
+    def _log_leading(k_here: float, k_other: float) -> float:
+        """log |f^(k+1)| at the end whose order is ``k_here``: k! / B(1 + k_start, 1 + k_end)."""
+        return math.lgamma(k_here + 1.0) - float(special.betaln(1.0 + k_here, 1.0 + k_other))
+
+    def _check_representable(self) -> None:
+        """Refuse orders whose leading end derivative is not a double.
+
+        The first derivative that does not vanish at an end, of order k + 1, is
+        k! / B(1 + k_start, 1 + k_end) in magnitude (from the power series of the
+        beta density there).  It sets the coefficient of the error law, and
+        everything built on the schedule's derivatives (the prediction, the
+        flatness check, the integrators' steps) needs it finite.  It passes the
+        largest double (1.8e308) at k_end = 170 when k_start = 0, and sooner when
+        both orders are large; there the schedule is also a step narrower than
+        1 / k of the anneal.
+        """
+        for name, here, other in (
+            ("schedule.k_end", float(self.k_end), float(self.k_start)),
+            ("schedule.k_start", float(self.k_start), float(self.k_end)),
+        ):
+            if self._log_leading(here, other) <= _LOG_DBL_MAX:
+                continue
+            lo, hi = 0.0, here  # largest order that stays representable, other fixed
+            for _ in range(60):
+                mid = 0.5 * (lo + hi)
+                if self._log_leading(mid, other) <= _LOG_DBL_MAX:
+                    lo = mid
+                else:
+                    hi = mid
+            other_name = "k_start" if name.endswith("k_end") else "k_end"
+            raise InputError(
+                name,
+                f"must be at most {math.floor(lo)} for the beta family with {other_name} = "
+                f"{other:g}, got {here:g}: beyond it the first derivative that does not "
+                "vanish at that end, k! / B(1 + k_start, 1 + k_end), which sets the error "
+                "law's coefficient, exceeds the largest double (1.8e308), so the schedule "
+                "can no longer be evaluated with meaning in double precision",
+            )
 
     def _plan(self, mmax: int) -> tuple[list[list[tuple[int, float]]], NDArray, NDArray]:
         """Leibniz terms (j, coefficient / B) of each density derivative 0..mmax, and

@@ -34,7 +34,9 @@ from .spec_model import (
     BathSpec,
     DeviceSpec,
     InitialSpec,
+    NoiseSpec,
     NumericsSpec,
+    ProblemFamilySpec,
     ProblemSpec,
     ScheduleSpec,
     Spec,
@@ -44,8 +46,12 @@ from .spec_model import (
 
 __all__ = [
     "BUILTIN_PREFIX",
+    "MAX_COEFFICIENT",
+    "MAX_ENERGY_GHZ",
     "MAX_QUBITS",
+    "MAX_SPEC_BYTES",
     "MAX_SWEEP_GRID",
+    "MIN_CUTOFF_GHZ",
     "SPEC_VERSION",
     "TEMPLATE",
     "builtin_scenarios",
@@ -57,10 +63,24 @@ __all__ = [
 SPEC_VERSION = 1
 #: Prefix selecting a packaged scenario in :func:`load_spec`.
 BUILTIN_PREFIX = "builtin:"
-#: Largest number of qubits a spec may declare.
-MAX_QUBITS = 10
-#: Largest ``num`` of a ``{start, stop, num}`` sweep grid (guards against typos).
+#: Largest number of qubits a spec may declare: 8 qubits need about 5.3 GB to set up
+#: (measured) and hours per point; 9 would need about 85 GB (see schedforge.limits).
+MAX_QUBITS = 8
+#: Largest number of tf values of a sweep, as a ``{start, stop, num}`` grid or an
+#: explicit list (guards against typos).
 MAX_SWEEP_GRID = 1000
+#: Largest spec file read (a spec is a few kB; 1 MiB leaves room for long lists).
+MAX_SPEC_BYTES = 1024 * 1024
+#: Largest energy scale (A0_ghz, B0_ghz, cutoff_ghz) in GHz.  Qubit energies are of
+#: order 1-100 GHz (common practice, no source); far beyond, numbers stop being energies
+#: and products of them overflow.
+MAX_ENERGY_GHZ = 1e6
+#: Smallest bath cutoff in GHz (1 kHz): below it every relaxation rate is zero.
+MIN_CUTOFF_GHZ = 1e-6
+#: Largest |h_i|, |J_ij| (dimensionless multipliers of B(s)).
+MAX_COEFFICIENT = 1e6
+#: Longest text of a value echoed in a message.
+_ECHO_CHARS = 60
 
 _SECTIONS: dict[str, type] = {
     "device": DeviceSpec,
@@ -71,6 +91,7 @@ _SECTIONS: dict[str, type] = {
     "numerics": NumericsSpec,
     "sweep": SweepSpec,
     "waveform": WaveformSpec,
+    "noise": NoiseSpec,
 }
 _TOP_KEYS = ("version", *_SECTIONS)
 
@@ -102,12 +123,23 @@ def _toml_type(value: Any) -> str:
     return type(value).__name__
 
 
+def _clip(value: Any) -> str:
+    """``repr(value)``, cut to a short length for messages."""
+    text = repr(value)
+    if len(text) > _ECHO_CHARS:
+        text = text[: _ECHO_CHARS - 3] + "..."
+    return text
+
+
+def _clip_path(path: Any) -> str:
+    """A path for messages: its end kept when it is very long."""
+    text = os.fspath(path)
+    return repr(text if len(text) <= 300 else "..." + text[-297:])
+
+
 def _shown(value: Any) -> str:
     """A value as shown in a message: its TOML type and a short repr."""
-    text = repr(value)
-    if len(text) > 60:
-        text = text[:57] + "..."
-    return f"{_toml_type(value)} {text}"
+    return f"{_toml_type(value)} {_clip(value)}"
 
 
 def _is_number(value: Any) -> bool:
@@ -128,7 +160,7 @@ def _number(
         raise InputError(path, f"must be a number, got {_shown(value)}")
     x = float(value)
     if not math.isfinite(x):
-        raise InputError(path, f"must be a finite number, got {value!r}")
+        raise InputError(path, f"must be a finite number, got {_clip(value)}")
     bounds = []
     if gt is not None:
         bounds.append(f"> {gt:g}")
@@ -145,7 +177,7 @@ def _number(
         and (le is None or x <= le)
     )
     if not ok:
-        raise InputError(path, f"must be a number {' and '.join(bounds)}, got {value!r}")
+        raise InputError(path, f"must be a number {' and '.join(bounds)}, got {_clip(value)}")
     return x
 
 
@@ -163,7 +195,7 @@ def _integer(value: Any, path: str, *, ge: int | None = None, le: int | None = N
         lo = "" if ge is None else f">= {ge}"
         hi = "" if le is None else f"<= {le}"
         rule = " and ".join(p for p in (lo, hi) if p)
-        raise InputError(path, f"must be an integer {rule}, got {value!r}")
+        raise InputError(path, f"must be an integer {rule}, got {_clip(value)}")
     return value
 
 
@@ -174,7 +206,7 @@ def _string(value: Any, path: str, choices: Sequence[str] | None = None) -> str:
     if choices is not None and value not in choices:
         known = ", ".join(repr(c) for c in choices)
         hint = _suggest(value, choices)
-        raise InputError(path, f"must be one of {known}; got {value!r}{hint}")
+        raise InputError(path, f"must be one of {known}; got {_clip(value)}{hint}")
     return value
 
 
@@ -200,7 +232,13 @@ def _table(value: Any, path: str) -> dict[str, Any]:
 
 def _suggest(word: str, known: Sequence[str]) -> str:
     """``"; did you mean `x`?"`` for the nearest known word, or ``""``."""
-    close = difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
+    if len(word) > 4 * _ECHO_CHARS:
+        return ""
+    same_letters = [k for k in known if k.lower() == word.lower()]
+    close = same_letters or difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
+    if not close:  # also compare without case ("Beta" -> "beta")
+        lowered = {k.lower(): k for k in known}
+        close = [lowered[c] for c in difflib.get_close_matches(word.lower(), list(lowered), n=1)]
     return f"; did you mean `{close[0]}`?" if close else ""
 
 
@@ -208,7 +246,8 @@ def _check_keys(table: dict[str, Any], known: Sequence[str], where: str) -> None
     """Reject keys outside the closed set ``known`` of a section."""
     for key in table:
         if key not in known:
-            path = f"{where}.{key}" if where else key
+            shown = key if len(key) <= _ECHO_CHARS else key[: _ECHO_CHARS - 3] + "..."
+            path = f"{where}.{shown}" if where else shown
             what = "a known key" if where else "a known section"
             listing = ", ".join(known)
             raise InputError(path, f"is not {what}{_suggest(key, known)} (known: {listing})")
@@ -218,7 +257,7 @@ def _no_repeats(values: Sequence[Any], path: str) -> None:
     seen: set[Any] = set()
     for i, v in enumerate(values):
         if v in seen:
-            raise InputError(f"{path}[{i}]", f"repeats the value {v!r}; list each value once")
+            raise InputError(f"{path}[{i}]", f"repeats the value {_clip(v)}; list each value once")
         seen.add(v)
 
 
@@ -251,34 +290,64 @@ def _positive(value: Any, path: str) -> float:
     return _number(value, path, gt=0)
 
 
+def _sha256_hex(value: Any, path: str) -> str:
+    text = _string(value, path)
+    if len(text) != 64 or any(c not in "0123456789abcdef" for c in text):
+        raise InputError(path, f"must be 64 lowercase hex digits (a SHA-256), got {_clip(text)}")
+    return text
+
+
 def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
     kw = _section(
         data,
         "device",
-        {"curves": _string, "A0_ghz": _positive, "B0_ghz": _positive},
+        {
+            "curves": _string,
+            "A0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
+            "B0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
+            "curves_sha256": _sha256_hex,
+        },
     )
     curves = kw.get("curves", DeviceSpec.curves)
-    if curves != "linear":
-        if not curves.strip():
-            raise InputError("device.curves", 'must be "linear" or the path of a CSV file')
-        path = Path(os.path.expanduser(curves))
-        if not path.is_absolute():
-            path = base_dir / path
-        path = path.resolve()
-        if not path.is_file():
-            raise InputError(
-                "device.curves",
-                f'must be "linear" or an existing CSV file (columns s, A_ghz, B_ghz); '
-                f"{str(path)!r} does not exist (relative paths are resolved from the "
-                f"spec file's folder)",
-            )
-        kw["curves"] = str(path)
+    if curves == "linear":
+        if "curves_sha256" in kw:
+            raise InputError("device.curves_sha256", 'applies only to a curves CSV, not "linear"')
+        return DeviceSpec(**kw)
+    if not curves.strip():
+        raise InputError("device.curves", 'must be "linear" or the path of a CSV file')
+    path = Path(os.path.expanduser(curves))
+    if not path.is_absolute():
+        path = base_dir / path
+    path = path.resolve()
+    if not path.is_file():
+        raise InputError(
+            "device.curves",
+            f'must be "linear" or an existing CSV file (columns s, A_ghz, B_ghz); '
+            f"{_clip_path(path)} does not exist (relative paths are resolved from the "
+            f"spec file's folder)",
+        )
+    from .device_table import file_sha256
+
+    digest = file_sha256(path)
+    pinned = kw.get("curves_sha256")
+    if pinned is not None and pinned != digest:
+        raise InputError(
+            "device.curves_sha256",
+            f"does not match {path} (its SHA-256 is {digest[:12]}..., the spec pins "
+            f"{pinned[:12]}...): the file changed since this spec was written",
+        )
+    kw["curves"] = str(path)
+    kw["curves_sha256"] = digest
     return DeviceSpec(**kw)
 
 
 def _h_list(value: Any, path: str) -> tuple[float, ...]:
     items = _array(value, path)
-    return tuple(_number(v, f"{path}[{i}]") for i, v in enumerate(items))
+    return tuple(_coefficient(v, f"{path}[{i}]") for i, v in enumerate(items))
+
+
+def _coefficient(value: Any, path: str) -> float:
+    return _number(value, path, ge=-MAX_COEFFICIENT, le=MAX_COEFFICIENT)
 
 
 def _j_list(value: Any, path: str) -> tuple[tuple[int, int, float], ...]:
@@ -290,7 +359,7 @@ def _j_list(value: Any, path: str) -> tuple[tuple[int, int, float], ...]:
             raise InputError(where, f"must be an array [i, j, J_ij], got {_shown(entry)}")
         i = _integer(entry[0], f"{where}[0]", ge=0)
         j = _integer(entry[1], f"{where}[1]", ge=0)
-        out.append((i, j, _number(entry[2], f"{where}[2]")))
+        out.append((i, j, _coefficient(entry[2], f"{where}[2]")))
     return tuple(out)
 
 
@@ -331,7 +400,7 @@ def _bath(data: dict[str, Any]) -> BathSpec:
             "spectrum": lambda v, p: _string(v, p, SPECTRA),
             "coupling": lambda v, p: _string(v, p, COUPLINGS),
             "eta": lambda v, p: _number(v, p, ge=0),
-            "cutoff_ghz": _positive,
+            "cutoff_ghz": lambda v, p: _number(v, p, ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ),
             "temperature_mk": _positive,
             "lamb_shift": _boolean,
         },
@@ -418,13 +487,21 @@ def _tf_grid(value: Any, path: str) -> tuple[float, ...]:
             raise InputError(f"{path}.num", "must be >= 2 when start and stop differ")
         if num > 1 and stop == start:
             raise InputError(f"{path}.num", "must be 1 when start equals stop")
-        return tuple(float(t) for t in np.geomspace(start, stop, num))
+        # 12 significant digits: the grid's own values, without the last-bit noise of
+        # geomspace (2000.0000000000002); the end points stay exactly as written
+        grid = [float(f"{t:.12g}") for t in np.geomspace(start, stop, num)]
+        grid[0], grid[-1] = start, stop
+        return tuple(grid)
     if not isinstance(value, list):
         raise InputError(
             path,
             f"must be an array of times in ns or a table {{start, stop, num}}, got {_shown(value)}",
         )
     items = _array(value, path, nonempty=True)
+    if len(items) > MAX_SWEEP_GRID:
+        raise InputError(
+            path, f"must hold at most {MAX_SWEEP_GRID} times (like a log grid), got {len(items)}"
+        )
     out = tuple(_number(v, f"{path}[{i}]", gt=0) for i, v in enumerate(items))
     _no_repeats(out, path)
     return out
@@ -470,6 +547,81 @@ def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
         },
     )
     return WaveformSpec(**kw)
+
+
+# -- [noise]: control errors (issue 17) -------------------------------------------
+#: Largest number of noise draws (guards against typos).
+MAX_NOISE_DRAWS = 1_000_000
+#: Largest size of a generated problem (2^n states are enumerated).
+MAX_FAMILY_QUBITS = 22
+
+
+def _noise_terms(value: Any, path: str) -> tuple[str, ...]:
+    from .control_noise import NOISE_TERMS
+
+    items = _array(value, path)
+    out = tuple(_string(v, f"{path}[{i}]", NOISE_TERMS) for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _noise_levels(value: Any, path: str) -> tuple[float, ...]:
+    items = _array(value, path)
+    out = tuple(_number(v, f"{path}[{i}]", ge=0) for i, v in enumerate(items))
+    _no_repeats(out, path)
+    return out
+
+
+def _family_sizes(value: Any, path: str) -> tuple[int, ...]:
+    items = _array(value, path, nonempty=True)
+    out = tuple(
+        _integer(v, f"{path}[{i}]", ge=2, le=MAX_FAMILY_QUBITS) for i, v in enumerate(items)
+    )
+    _no_repeats(out, path)
+    return out
+
+
+def _problem_family(value: Any, path: str) -> ProblemFamilySpec:
+    from .problem_families import COUPLING_KINDS, FIELD_KINDS, GRAPHS
+
+    table = _table(value, path)
+    _check_keys(table, [f.name for f in dataclasses.fields(ProblemFamilySpec)], path)
+    readers: dict[str, Callable[[Any, str], Any]] = {
+        "graph": lambda v, p: _string(v, p, GRAPHS),
+        "couplings": lambda v, p: _string(v, p, COUPLING_KINDS),
+        "fields": lambda v, p: _string(v, p, FIELD_KINDS),
+        "field_scale": lambda v, p: _number(v, p, ge=0),
+        "sizes": _family_sizes,
+        "instances": lambda v, p: _integer(v, p, ge=1, le=1000),
+        "seed": lambda v, p: _integer(v, p, ge=0),
+    }
+    fam = ProblemFamilySpec(**{k: readers[k](v, f"{path}.{k}") for k, v in table.items()})
+    if fam.graph == "ring":
+        for i, n in enumerate(fam.sizes):
+            if n < 3:
+                raise InputError(f"{path}.sizes[{i}]", f"must be >= 3 for a ring, got {n}")
+    return fam
+
+
+def _noise(data: dict[str, Any]) -> NoiseSpec | None:
+    if "noise" not in data:
+        return None
+    kw = _section(
+        data,
+        "noise",
+        {
+            "level": lambda v, p: _number(v, p, ge=0),
+            "terms": _noise_terms,
+            "amplitude_level": lambda v, p: _number(v, p, ge=0, lt=1),
+            "draws": lambda v, p: _integer(v, p, ge=1, le=MAX_NOISE_DRAWS),
+            "seed": lambda v, p: _integer(v, p, ge=0),
+            "target": lambda v, p: _number(v, p, gt=0, le=1),
+            "confidence": lambda v, p: _number(v, p, gt=0, lt=1),
+            "levels": _noise_levels,
+            "problems": _problem_family,
+        },
+    )
+    return NoiseSpec(**kw)
 
 
 def _check_schedules(spec: Spec) -> None:
@@ -544,9 +696,13 @@ def parse_spec(
         numerics=_numerics(data),
         sweep=_sweep(data),
         waveform=_waveform(data),
+        noise=_noise(data),
         source=source,
     )
     _check_schedules(spec)
+    from .limits import check_energy_scales
+
+    check_energy_scales(spec)
     return spec
 
 
@@ -559,10 +715,16 @@ def builtin_scenarios() -> tuple[str, ...]:
 
 
 def _read_toml(text: str, label: str) -> dict[str, Any]:
+    """Parse TOML text; a leading UTF-8 byte-order mark is accepted."""
+    text = text.removeprefix("\ufeff")
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError(label, f"is not valid TOML: {exc}") from None
+    except RecursionError:  # arrays or inline tables nested thousands deep
+        raise InputError(
+            label, "nests arrays or tables too deeply to be a spec (is it the right file?)"
+        ) from None
 
 
 def load_spec(path_or_name: str | os.PathLike[str]) -> Spec:
@@ -601,11 +763,18 @@ def load_spec(path_or_name: str | os.PathLike[str]) -> Spec:
             return parse_spec(data, Path(real).parent, source=name)
     path = Path(name)
     if not path.is_file():
-        raise InputError("spec", f"must be an existing TOML file; {name!r} was not found")
+        raise InputError("spec", f"must be an existing TOML file; {_clip_path(name)} was not found")
     try:
-        text = path.read_text(encoding="utf-8")
+        size = path.stat().st_size
+        if size > MAX_SPEC_BYTES:
+            raise InputError(
+                "spec",
+                f"must be a file of at most {MAX_SPEC_BYTES // 1024} KiB; {_clip_path(name)} has "
+                f"{size / 1024:.0f} KiB (is it the right file?)",
+            )
+        text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError("spec", f"could not be read from {name!r}: {exc}") from None
+        raise InputError("spec", f"could not be read from {_clip_path(name)}: {exc}") from None
     data = _read_toml(text, name)
     return parse_spec(data, path.resolve().parent, source=str(path))
 
@@ -622,9 +791,11 @@ version = {SPEC_VERSION}
 curves = "linear"
 A0_ghz = 3.5
 B0_ghz = 2.5
+# curves_sha256 = "..."  # optional: the SHA-256 the CSV must have (spec copies pin it)
 
 [problem]
-# H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1..{MAX_QUBITS} qubits.
+# H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1 to {MAX_QUBITS} qubits
+# (cost per point: seconds up to 5 qubits, about 25 s at 6, minutes at 7, hours at 8).
 qubits = 1
 h = [0.7]          # one entry per qubit
 J = []             # couplings as [i, j, J_ij] with 0 <= i < j < qubits, e.g. [[0, 1, -1.0]]
@@ -639,18 +810,33 @@ lamb_shift = false       # include the bath-induced energy shift
 
 [schedule]
 # s = f(t / tf).  k_start / k_end: how many derivatives of s vanish at t = 0 / t = tf.
+# Families and the keys they use:
+#   linear  s = x; no flat end (k_start, k_end, tail ignored)
+#   beta    regularized incomplete beta I_x(1 + k_start, 1 + k_end); real k allowed
+#   poly    a base curve (the straight line s = x, or the curve through `points` when
+#           given) whose last `tail` of the anneal is replaced by a polynomial with k_end
+#           vanishing derivatives at the end; k_start must be 0
+#   points  a monotone curve through the control `points`, its last `tail` reshaped
+#           like poly (k_end vanishing derivatives at the end); k_start must be 0
+#   gevrey  every derivative vanishes at the end (k = inf; the value of k_end is not
+#           used); k_start > 0 makes the start flat to every order too
 family = "beta"          # linear, beta, poly, gevrey or points
 k_start = 0
 k_end = 2
 tf_ns = 1000.0           # anneal time
 tail = 0.2               # fraction of the anneal reshaped by the poly and points families
-# points = [[0.0, 0.0], [0.5, 0.4], [1.0, 1.0]]   # [x, s] control points (points family)
+# points = [[0.0, 0.0], [0.5, 0.4], [1.0, 1.0]]   # [x, s] control points (points, poly)
 
 [initial]
 state = "gibbs"          # "gibbs" (thermal state of H(0)) or "ground"
 
 [numerics]
-integrator = "auto"      # "auto" or the name of an integrator
+# integrator: "auto" (eigenframe for open systems, general for closed ones), or one of
+#   "eigenframe" (open systems; cost independent of tf), "general" (adaptive DOP853, the
+#   reference; cost grows with tf), "closed" (the general one on a closed system, as it
+#   is reported), "held" (piecewise-constant played waveforms; used for them whatever
+#   is named)
+integrator = "auto"
 rtol = 1e-10
 atol = 1e-14
 
@@ -670,4 +856,23 @@ atol = 1e-14
 # max_slope_per_ns = 0.01
 # breakpoints = 32
 # breakpoint_tolerance = 1e-4
+
+# Control errors on the programmed h_i, J_ij (schedforge precision / noise-sweep).
+# [noise]
+# level = 0.02                 # std of each coefficient's error / largest |h_i|, |J_ij|
+# terms = ["h", "J"]           # which coefficients carry errors
+# amplitude_level = 0.0        # relative std of the amplitude of A(s) and of B(s) (dynamics)
+# draws = 200
+# seed = 0
+# target = 0.05                # largest acceptable probability that the ground state changes
+# confidence = 0.95            # of the Wilson intervals
+# levels = []                  # levels to tabulate; default: a grid up to the crossing
+# [noise.problems]             # optional: generated problems, fragility against size
+# graph = "ring"               # chain, ring, grid or complete
+# couplings = "sign"           # sign (+-1) or gaussian
+# fields = "none"              # none, sign or gaussian (times field_scale)
+# field_scale = 1.0
+# sizes = [4, 8, 12, 16]       # qubits (2..{MAX_FAMILY_QUBITS}); every state is enumerated
+# instances = 3
+# seed = 0
 """

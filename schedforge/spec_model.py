@@ -20,7 +20,9 @@ __all__ = [
     "BathSpec",
     "DeviceSpec",
     "InitialSpec",
+    "NoiseSpec",
     "NumericsSpec",
+    "ProblemFamilySpec",
     "ProblemSpec",
     "ScheduleSpec",
     "Spec",
@@ -35,11 +37,26 @@ class DeviceSpec:
 
     ``curves`` is ``"linear"`` (A = A0 (1 - s), B = B0 s) or the path of a CSV
     file with columns ``s, A_ghz, B_ghz`` (resolved to an absolute path).
+    ``curves_sha256`` is the SHA-256 (hex) of that file's bytes, recorded when
+    the spec is read: the study is what the file held then, wherever it lies
+    (the path is not part of the physics), and a file changed since is refused
+    when the curves are built.
     """
 
     curves: str = "linear"
     A0_ghz: float = 3.5
     B0_ghz: float = 2.5
+    curves_sha256: str | None = None
+
+    def curves_digest(self) -> str | None:
+        """SHA-256 of the curves file (``None`` for linear curves); read if not recorded."""
+        if self.curves == "linear":
+            return None
+        if self.curves_sha256 is not None:
+            return self.curves_sha256
+        from .device_table import file_sha256
+
+        return file_sha256(self.curves)
 
 
 @dataclass(frozen=True)
@@ -130,6 +147,50 @@ class WaveformSpec:
 
 
 @dataclass(frozen=True)
+class ProblemFamilySpec:
+    """Problems generated from a seed, for the ground state's fragility against size.
+
+    ``graph`` is ``chain``, ``ring``, ``grid`` or ``complete``; ``couplings`` is
+    ``sign`` (J = +-1) or ``gaussian`` (J from N(0, 1)); ``fields`` is ``none``,
+    ``sign`` or ``gaussian`` (times ``field_scale``).  Each size gets ``instances``
+    problems (see :func:`schedforge.problem_families.make_problem`).
+    """
+
+    graph: str = "ring"
+    couplings: str = "sign"
+    fields: str = "none"
+    field_scale: float = 1.0
+    sizes: tuple[int, ...] = (4, 8, 12, 16)
+    instances: int = 3
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class NoiseSpec:
+    """Control errors on the programmed problem (the ``[noise]`` section).
+
+    ``level`` is the standard deviation of the Gaussian error of each programmed
+    h_i and J_ij (those named in ``terms``) as a fraction of the problem's largest
+    |h_i|, |J_ij|; ``amplitude_level`` the relative standard deviation of one
+    amplitude error of A(s) and one of B(s) per draw (dynamics only).  ``draws``
+    draws come from ``seed``; ``target`` is the largest acceptable probability that
+    the ground state changes, ``confidence`` the level of the Wilson intervals;
+    ``levels`` (optional) the levels at which to tabulate the probability.
+    Not part of :meth:`Spec.physics_dict`: it does not change a noiseless sweep.
+    """
+
+    level: float = 0.02
+    terms: tuple[str, ...] = ("h", "J")
+    amplitude_level: float = 0.0
+    draws: int = 200
+    seed: int = 0
+    target: float = 0.05
+    confidence: float = 0.95
+    levels: tuple[float, ...] = ()
+    problems: ProblemFamilySpec | None = None
+
+
+@dataclass(frozen=True)
 class Spec:
     """A whole study.  ``source`` is the file it came from (not part of the physics)."""
 
@@ -142,6 +203,7 @@ class Spec:
     numerics: NumericsSpec = field(default_factory=NumericsSpec)
     sweep: SweepSpec | None = None
     waveform: WaveformSpec | None = None
+    noise: NoiseSpec | None = None
     source: str | None = field(default=None, compare=False)
 
     def physics_dict(self) -> dict[str, Any]:
@@ -150,11 +212,16 @@ class Spec:
         It excludes the schedule's own coordinates (family, k, tf), which a sweep
         varies, and the sweep grid itself; it includes the schedule's shape
         parameters (``tail``, ``points``), the integrator settings and the waveform.
+        A curves CSV enters through the SHA-256 of its contents, not its path.
         """
         sched = self.schedule
+        device = asdict(self.device)
+        del device["curves_sha256"]  # absent before content hashing: old hashes unchanged
+        if self.device.curves != "linear":  # what the file holds, not where it lies
+            device["curves"] = f"sha256:{self.device.curves_digest()}"
         return {
             "version": self.version,
-            "device": asdict(self.device),
+            "device": device,
             "problem": asdict(self.problem),
             "bath": asdict(self.bath),
             "schedule_shape": {"tail": sched.tail, "points": sched.points},

@@ -23,7 +23,17 @@ the same folder at the same time is refused (an exclusive lock on
 
 A store made for a different physics (different ``physics_hash``) is refused with
 an :class:`~schedforge.errors.InputError` naming ``--out``;
-:func:`archive_sweep_dir` moves the old store aside for ``--fresh``.
+:func:`archive_sweep_dir` moves the old study aside for ``--fresh``: the store and
+every output made from it (:data:`STUDY_OUTPUTS`), so that the folder never mixes
+two studies.  A damaged store file (truncated, overwritten) is reported as such
+(an :class:`~schedforge.errors.InputError`); ``--fresh`` moves it aside intact.
+
+The folder lock (:func:`folder_lock`) is re-entrant within one process, so the
+``sweep`` command can hold it from the archive of an old study until the new
+study's fits and report are written, while the store and the archive take it
+again inside.  A run whose process died without recording its end (``kill -9``,
+power loss) is marked ``abandoned`` the next time the store is opened for
+writing: the writer holds the lock, so no other run can still be going.
 
 NaN results are stored as SQL NULL (SQLite has no NaN) and read back as NaN.
 """
@@ -38,7 +48,7 @@ import math
 import os
 import socket
 import sqlite3
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -47,14 +57,21 @@ from .errors import InputError
 from .fileio import atomic_write
 
 __all__ = [
+    "ABANDONED",
     "CSV_COLUMNS",
     "LOCK_NAME",
     "POINTS_CSV_NAME",
     "RESULT_FLOAT_COLUMNS",
     "SCHEMA_VERSION",
     "STORE_NAME",
+    "STUDY_OUTPUTS",
+    "WARNING_SEPARATOR",
     "PointStore",
+    "archive_outputs",
     "archive_sweep_dir",
+    "check_csv_complete",
+    "folder_lock",
+    "point_warnings",
     "read_points_csv",
     "utc_now",
     "write_points_csv",
@@ -64,6 +81,17 @@ SCHEMA_VERSION = 1
 STORE_NAME = "sweep.sqlite"
 LOCK_NAME = "sweep.lock"
 POINTS_CSV_NAME = "points.csv"
+#: Files and folders of a sweep folder made from its store: archived with it by
+#: ``--fresh`` so that the folder always describes one study.
+STUDY_OUTPUTS: tuple[str, ...] = (
+    POINTS_CSV_NAME,
+    "fit.csv",
+    "spec.toml",
+    "report.html",
+    "plots",
+)
+#: State given to a run found still "running" when the store is next opened for writing.
+ABANDONED = "abandoned"
 
 #: Coordinates of a point, in sort order of points.csv.
 COORD_COLUMNS: tuple[str, ...] = ("family", "variant", "k_start", "k_end", "tf_ns")
@@ -88,7 +116,12 @@ CSV_COLUMNS: tuple[str, ...] = (
     "wall_s",
     "integrator",
     "message",
+    "warnings",
 )
+#: Columns of points.csv that an older points.csv may lack (read back as "").
+_OPTIONAL_CSV_COLUMNS = frozenset({"warnings"})
+#: Separator of a point's warnings in the ``warnings`` column.
+WARNING_SEPARATOR = " | "
 _FLOAT_COLUMNS = frozenset(("k_start", "k_end", "tf_ns", *RESULT_FLOAT_COLUMNS))
 _ROW_COLUMNS: tuple[str, ...] = (
     *COORD_COLUMNS,
@@ -149,23 +182,106 @@ def utc_now() -> str:
     return _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def _lock_file(path: Path) -> Any:
-    """Take an exclusive, non-blocking lock on ``path``; return the open file."""
-    fh = open(path, "a+")  # held open (locked) for the store's lifetime
+#: Locks this process holds: resolved lock path -> [open file, depth].
+_HELD_LOCKS: dict[str, list[Any]] = {}
+
+
+def _in_use(path: Path) -> InputError:
+    return InputError(
+        "--out",
+        f"is in use by another running sweep or report ({path} is locked): wait for it "
+        "to finish or choose another directory",
+    )
+
+
+def _acquire(path: Path) -> str:
+    """Take the exclusive, non-blocking lock on ``path`` (re-entrant); return its key."""
+    key = str(path.resolve())
+    held = _HELD_LOCKS.get(key)
+    if held is not None:
+        held[1] += 1
+        return key
     try:
         import fcntl
     except ImportError:  # not POSIX: no inter-process lock, single user assumed
-        return fh
-    try:
-        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except OSError:
+        fcntl = None  # type: ignore[assignment]
+    for _attempt in range(5):
+        fh = open(path, "a+")  # held open (locked) while the lock is held
+        if fcntl is None:
+            break
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            fh.close()
+            raise _in_use(path) from None
+        # The lock file may have been removed (and made anew by another process)
+        # between our open and our lock: then we locked a file nobody else sees.
+        try:
+            same = os.path.samestat(os.fstat(fh.fileno()), os.stat(path))
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
         fh.close()
-        raise InputError(
-            "--out",
-            f"is in use by another running sweep ({path} is locked): wait for it to "
-            "finish or choose another directory",
-        ) from None
-    return fh
+    else:  # pragma: no cover - the lock file keeps being replaced
+        raise _in_use(path)
+    _HELD_LOCKS[key] = [fh, 1]
+    return key
+
+
+def _release(key: str) -> None:
+    held = _HELD_LOCKS.get(key)
+    if held is None:
+        return
+    held[1] -= 1
+    if held[1] <= 0:
+        del _HELD_LOCKS[key]
+        with contextlib.suppress(OSError):  # no sweep.lock left behind in a finished folder
+            os.unlink(key)  # while still held: a newcomer re-locks the new file (see above)
+        held[0].close()
+
+
+class _Lock:
+    """A held folder lock; :meth:`close` releases this hold (idempotent)."""
+
+    def __init__(self, path: Path) -> None:
+        self._key: str | None = _acquire(path)
+
+    def close(self) -> None:
+        if self._key is not None:
+            _release(self._key)
+            self._key = None
+
+
+def _lock_file(path: Path) -> _Lock:
+    """Take an exclusive, non-blocking lock on ``path`` (re-entrant within a process)."""
+    return _Lock(path)
+
+
+@contextlib.contextmanager
+def folder_lock(folder: str | os.PathLike[str]) -> Iterator[None]:
+    """Hold the sweep folder's lock (``DIR/sweep.lock``) for the ``with`` block.
+
+    Re-entrant within one process: the store and :func:`archive_sweep_dir` take
+    it again inside.  Another process trying to write or report into the folder
+    meanwhile is refused (:class:`~schedforge.errors.InputError` naming ``--out``).
+    The operating system releases it if the process dies; the lock file is removed
+    when the last hold is released.
+    """
+    lock = _lock_file(Path(folder) / LOCK_NAME)
+    try:
+        yield
+    finally:
+        lock.close()
+
+
+def _damaged(path: Path, exc: BaseException | str) -> InputError:
+    return InputError(
+        "--out",
+        f"holds a damaged sweep store: {path} is not a readable SQLite database ({exc}). "
+        "Rerun with --fresh to move it aside intact (to DIR/archive/<time>/) and start "
+        "over, or restore it from a backup",
+    )
 
 
 class PointStore:
@@ -198,20 +314,49 @@ class PointStore:
     ) -> None:
         self.path = Path(path)
         self.readonly = physics_hash is None
-        self._lock = None
-        if self.readonly:
-            if not self.path.exists():
-                raise InputError(str(self.path), "does not exist (no sweep store there)")
-            uri = f"file:{self.path.resolve()}?mode=ro"
-            self._conn = sqlite3.connect(uri, uri=True, isolation_level=None)
-        else:
-            self._lock = _lock_file(self.path.with_name(LOCK_NAME))
-            self._conn = sqlite3.connect(str(self.path), isolation_level=None, timeout=30.0)
-            self._conn.execute("PRAGMA journal_mode=WAL")
-            self._conn.execute("PRAGMA synchronous=FULL")
-            self._conn.executescript(_SCHEMA)
-            self._bind(physics_hash, physics)
+        self._lock: _Lock | None = None
+        self._conn: sqlite3.Connection | None = None
+        try:
+            if self.readonly:
+                if not self.path.exists():
+                    raise InputError(str(self.path), "does not exist (no sweep store there)")
+                uri = f"file:{self.path.resolve()}?mode=ro"
+                self._conn = sqlite3.connect(uri, uri=True, isolation_level=None)
+                self._check_integrity()
+            else:
+                self._lock = _lock_file(self.path.with_name(LOCK_NAME))
+                self._conn = sqlite3.connect(str(self.path), isolation_level=None, timeout=30.0)
+                self._check_integrity()
+                self._conn.execute("PRAGMA journal_mode=WAL")
+                self._conn.execute("PRAGMA synchronous=FULL")
+                self._conn.executescript(_SCHEMA)
+                self._bind(physics_hash, physics)
+                self._close_abandoned_runs()
+        except sqlite3.DatabaseError as exc:
+            self.close()
+            raise _damaged(self.path, exc) from None
+        except BaseException:
+            self.close()
+            raise
         self._conn.row_factory = sqlite3.Row
+
+    def _check_integrity(self) -> None:
+        """Refuse a damaged file (SQLite's ``quick_check``; cheap for a sweep's size)."""
+        if self.path.exists() and self.path.stat().st_size == 0:
+            return  # a new, empty store
+        rows = self._conn.execute("PRAGMA quick_check").fetchall()
+        verdict = "; ".join(str(r[0]) for r in rows[:3])
+        if verdict != "ok":
+            raise _damaged(self.path, f"integrity check: {verdict[:300]}")
+
+    def _close_abandoned_runs(self) -> None:
+        """Mark runs still "running" as abandoned: we hold the lock, so none is."""
+        self._conn.execute(
+            "UPDATE runs SET state = ?,"
+            " n_computed = (SELECT COUNT(*) FROM points WHERE points.run_id = runs.run_id)"
+            " WHERE state = 'running'",
+            (ABANDONED,),
+        )
 
     # -- meta ---------------------------------------------------------------
     def meta(self) -> dict[str, str]:
@@ -348,7 +493,8 @@ class PointStore:
 
     def rows(self, keys: Iterable[str] | None = None) -> list[dict[str, Any]]:
         """Stored rows (all, or those of ``keys``), sorted by family, variant, k_start,
-        k_end, tf_ns; NULL floats come back as NaN."""
+        k_end, tf_ns; NULL floats come back as NaN; ``warnings`` is the point's own
+        warnings (:func:`point_warnings`) joined by :data:`WARNING_SEPARATOR`."""
         cur = self._conn.execute(
             "SELECT * FROM points ORDER BY family, variant, k_start, k_end, tf_ns, key"
         )
@@ -361,6 +507,7 @@ class PointStore:
             for col in _FLOAT_COLUMNS:
                 if d[col] is None:
                     d[col] = math.nan
+            d["warnings"] = WARNING_SEPARATOR.join(point_warnings(d))
             out.append(d)
         return out
 
@@ -372,8 +519,9 @@ class PointStore:
             with contextlib.suppress(sqlite3.Error):
                 conn.close()
             self._conn = None  # type: ignore[assignment]
-        if self._lock is not None:
-            self._lock.close()
+        lock = getattr(self, "_lock", None)
+        if lock is not None:
+            lock.close()
             self._lock = None
 
     def __enter__(self) -> PointStore:
@@ -383,12 +531,69 @@ class PointStore:
         self.close()
 
 
+def _archive_folder(folder: Path) -> Path:
+    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%dT%H%M%S.%fZ")
+    dest = folder / "archive" / stamp
+    dest.mkdir(parents=True)
+    return dest
+
+
+def _move_store(store: Path, dest: Path) -> str:
+    """Archive the store into ``dest``; return how ("copied" or "moved intact").
+
+    A readable store is copied, consistent and self-contained (``VACUUM INTO``),
+    then deleted with its WAL files.  A damaged one is moved aside as it is, WAL
+    files included, so that nothing of it is lost.
+    """
+    try:
+        conn = sqlite3.connect(str(store), isolation_level=None)
+        try:
+            conn.execute("VACUUM INTO ?", (str(dest / STORE_NAME),))
+        finally:
+            conn.close()
+        how = "copied"
+    except sqlite3.DatabaseError:
+        with contextlib.suppress(FileNotFoundError):
+            (dest / STORE_NAME).unlink()  # a partial copy
+        for suffix in ("", "-wal", "-shm"):
+            with contextlib.suppress(FileNotFoundError):
+                os.replace(f"{store}{suffix}", dest / f"{STORE_NAME}{suffix}")
+        return "moved intact (damaged)"
+    for suffix in ("", "-wal", "-shm"):
+        with contextlib.suppress(FileNotFoundError):
+            Path(f"{store}{suffix}").unlink()
+    return how
+
+
+def archive_outputs(
+    out_dir: str | os.PathLike[str], names: Sequence[str] = STUDY_OUTPUTS
+) -> Path | None:
+    """Move the outputs ``names`` of ``out_dir`` that exist into a new archive folder.
+
+    Returns the archive folder (``out_dir/archive/<UTC timestamp>/``), or
+    ``None`` when none of them exists.  Takes the folder lock (re-entrant).
+    """
+    folder = Path(out_dir)
+    present = [n for n in names if (folder / n).exists()]
+    if not present:
+        return None
+    with folder_lock(folder):
+        dest = _archive_folder(folder)
+        for name in present:
+            with contextlib.suppress(FileNotFoundError):
+                os.replace(folder / name, dest / name)
+    return dest
+
+
 def archive_sweep_dir(out_dir: str | os.PathLike[str]) -> Path | None:
-    """Move an existing store and points.csv of ``out_dir`` aside (for ``--fresh``).
+    """Move the whole study of ``out_dir`` aside (for ``--fresh``).
 
     The store is copied, consistent and self-contained (``VACUUM INTO``), to
-    ``out_dir/archive/<UTC timestamp>/sweep.sqlite`` together with ``points.csv``;
-    the originals (and the WAL files) are then deleted.
+    ``out_dir/archive/<UTC timestamp>/sweep.sqlite`` and the original (with its
+    WAL files) deleted; a damaged store is moved there intact instead.  Every
+    output made from the store (:data:`STUDY_OUTPUTS`: ``points.csv``,
+    ``fit.csv``, ``spec.toml``, ``report.html``, ``plots/``) goes with it, so
+    that no output of the old study stays beside the new one.
 
     Parameters
     ----------
@@ -407,28 +612,27 @@ def archive_sweep_dir(out_dir: str | os.PathLike[str]) -> Path | None:
     """
     folder = Path(out_dir)
     store = folder / STORE_NAME
-    csv_path = folder / POINTS_CSV_NAME
-    if not store.exists() and not csv_path.exists():
+    outputs = [n for n in STUDY_OUTPUTS if (folder / n).exists()]
+    if not store.exists() and not outputs:
         return None
-    lock = _lock_file(folder / LOCK_NAME)
-    try:
-        stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%dT%H%M%S.%fZ")
-        dest = folder / "archive" / stamp
-        dest.mkdir(parents=True)
+    with folder_lock(folder):
+        dest = _archive_folder(folder)
         if store.exists():
-            conn = sqlite3.connect(str(store), isolation_level=None)
-            try:
-                conn.execute("VACUUM INTO ?", (str(dest / STORE_NAME),))
-            finally:
-                conn.close()
-            for suffix in ("", "-wal", "-shm"):
-                with contextlib.suppress(FileNotFoundError):
-                    Path(f"{store}{suffix}").unlink()
-        if csv_path.exists():
-            os.replace(csv_path, dest / POINTS_CSV_NAME)
-    finally:
-        lock.close()
+            _move_store(store, dest)
+        for name in outputs:
+            with contextlib.suppress(FileNotFoundError):
+                os.replace(folder / name, dest / name)
     return dest
+
+
+def point_warnings(row: Mapping[str, Any]) -> list[str]:
+    """The point's own warnings, kept in ``stats_json["warnings"]`` ([] if none)."""
+    try:
+        stats = json.loads(row.get("stats_json") or "{}")
+    except (TypeError, ValueError):
+        return []
+    found = stats.get("warnings", []) if isinstance(stats, dict) else []
+    return [str(w) for w in found] if isinstance(found, list) else [str(found)]
 
 
 def _format_cell(col: str, value: Any) -> str:
@@ -456,22 +660,71 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
     Raises
     ------
     InputError
-        A required column is missing or a number does not parse (the line is named).
+        A required column is missing, a line has too few or too many cells (a
+        truncated or damaged file), or a number does not parse; the file and the
+        line are named.
     """
-    with open(path, newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
-        missing = [c for c in CSV_COLUMNS if c not in (reader.fieldnames or [])]
+    with open(path, newline="", encoding="utf-8-sig") as fh:
+        reader = csv.DictReader(fh, restkey="\0extra")
+        missing = [
+            c
+            for c in CSV_COLUMNS
+            if c not in (reader.fieldnames or []) and c not in _OPTIONAL_CSV_COLUMNS
+        ]
         if missing:
             raise InputError(str(path), f"must have the columns {', '.join(missing)}")
+        width = len(reader.fieldnames or [])
         out = []
-        for lineno, rec in enumerate(reader, start=2):
+        for rec in reader:
+            where = f"{path}: line {reader.line_num}"
+            extra = rec.pop("\0extra", None)
+            n_cells = width - sum(v is None for v in rec.values()) + len(extra or ())
+            if n_cells != width:
+                raise InputError(
+                    where,
+                    f"has {n_cells} cells, the header {width}: the file is truncated or "
+                    "damaged (rebuild it from the store: rerun the sweep command)",
+                )
             row: dict[str, Any] = dict(rec)
+            for col in _OPTIONAL_CSV_COLUMNS:
+                row.setdefault(col, "")
             for col in _FLOAT_COLUMNS & set(CSV_COLUMNS):
                 try:
                     row[col] = float(rec[col])
                 except (TypeError, ValueError):
                     raise InputError(
-                        f"{path}: line {lineno}", f"column {col} must be a number, got {rec[col]!r}"
+                        where, f"column {col} must be a number, got {_clip(rec[col])}"
                     ) from None
             out.append(row)
     return out
+
+
+def check_csv_complete(path: str | os.PathLike[str]) -> None:
+    """Refuse a CSV file with a line of too few or too many cells (truncated, damaged).
+
+    Lines starting with ``#`` and blank lines are skipped; the first other line is
+    the header.
+
+    Raises
+    ------
+    InputError
+        Naming the file and the line.
+    """
+    with open(path, newline="", encoding="utf-8-sig") as fh:
+        reader = csv.reader(line for line in fh if line.strip() and not line.startswith("#"))
+        width = None
+        for n, cells in enumerate(reader, start=1):
+            if width is None:
+                width = len(cells)
+                header_line = reader.line_num
+                continue
+            if len(cells) != width:
+                raise InputError(
+                    f"{path}: data row {n - 1} (after the header on line {header_line})",
+                    f"has {len(cells)} cells, the header {width}: the file is truncated or damaged",
+                )
+
+
+def _clip(value: Any, limit: int = 60) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."

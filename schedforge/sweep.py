@@ -13,6 +13,13 @@ crash computes only what is missing.
 
 For the ``linear`` family ``k_start`` and ``k_end`` are meaningless (nothing is
 flat): it contributes one point per ``tf_ns``, recorded with ``k_start = k_end = 0``.
+A ``gevrey`` schedule is flat to every order at the end whatever ``k_end`` says: it
+also contributes one point per ``tf_ns`` (per ``k_start``), recorded with ``k_end = 0``.
+
+Each stored point keeps its own warnings (those of its simulation that are not
+already warnings of the whole sweep, such as a tf short against the final
+relaxation time) in ``stats_json["warnings"]``; they reach ``points.csv`` (column
+``warnings``), the report and the console summary.
 """
 
 from __future__ import annotations
@@ -32,6 +39,7 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
+from .error_law import NO_K_END_FAMILIES
 from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .progress import ProgressReporter
@@ -49,6 +57,7 @@ from .spec_model import (
 from .store import (
     POINTS_CSV_NAME,
     STORE_NAME,
+    WARNING_SEPARATOR,
     PointStore,
     archive_sweep_dir,
     utc_now,
@@ -58,6 +67,7 @@ from .store import (
 __all__ = [
     "INPUT_ERROR",
     "VARIANTS",
+    "PointPlan",
     "SweepOutcome",
     "SweepPoint",
     "format_summary",
@@ -127,8 +137,9 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
     Families default to ``[spec.schedule.family]``, k_end to ``[spec.schedule.k_end]``
     and tf_ns to ``[spec.schedule.tf_ns]`` (so a spec without ``[sweep]`` gives one
     point); k_start is ``spec.schedule.k_start``.  ``linear`` gives one point per
-    tf with ``k_start = k_end = 0``.  With a ``[waveform]`` section every point
-    has a ``"realized"`` twin.
+    tf with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its
+    end is flat to every order whatever k_end).  With a ``[waveform]`` section every
+    point has a ``"realized"`` twin.
 
     Parameters
     ----------
@@ -153,6 +164,8 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
                 for variant in variants:
                     if family in _NO_K_FAMILIES:
                         points.add(SweepPoint(family, 0.0, 0.0, tf, variant=variant))
+                    elif family in NO_K_END_FAMILIES:  # k_end has no effect: once per tf
+                        points.add(SweepPoint(family, sched.k_start, 0.0, tf, variant=variant))
                     else:
                         points.add(SweepPoint(family, sched.k_start, k_end, tf, variant=variant))
     return sorted(points)
@@ -179,7 +192,20 @@ def _nan_result(wall_s: float) -> dict[str, Any]:
     }
 
 
-def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
+def _played_note(pending: Sequence[SweepPoint]) -> str:
+    """The start line's note on played-waveform points, which cost far more."""
+    n = sum(1 for p in pending if p.variant == "realized")
+    if not n:
+        return ""
+    return (
+        f"; {n} of them as played, each far slower than its ideal twin (it follows every "
+        "sample: one qubit at 3 us, 16 s instead of 0.05 s)"
+    )
+
+
+def run_point(
+    spec: Spec, point: SweepPoint, *, common_warnings: Sequence[str] = ()
+) -> dict[str, Any]:
     """Simulate one point; return its store row (a plain, picklable dict).
 
     A module-level pure function, so executors can ship it to worker processes.
@@ -195,14 +221,18 @@ def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
     ----------
     spec : Spec
     point : SweepPoint
+    common_warnings : sequence of str
+        Warnings of the whole sweep (the system's pre-flight), left out of the
+        point's own ``warnings``.
 
     Returns
     -------
     dict
         Coordinates, ``trace_distance``, ``ground_infidelity``,
         ``excess_energy_ghz``, ``status``, ``message``, ``integrator``,
-        ``stats_json``, ``wall_s``, ``schedforge_version``, ``computed_at``,
-        ``worker``.
+        ``stats_json`` (with the point's own warnings under ``"warnings"``),
+        ``warnings`` (the same, joined by :data:`WARNING_SEPARATOR`), ``wall_s``,
+        ``schedforge_version``, ``computed_at``, ``worker``.
     """
     row: dict[str, Any] = {
         "family": point.family,
@@ -230,9 +260,12 @@ def run_point(spec: Spec, point: SweepPoint) -> dict[str, Any]:
         row["status"] = str(result.status)
         row["message"] = str(result.message or "")
         row["integrator"] = str(result.integrator or "")
-        row["stats_json"] = json.dumps(
-            dict(result.stats or {}), sort_keys=True, default=_json_default
-        )
+        own = [w for w in result.warnings if w not in set(common_warnings)]
+        stats = dict(result.stats or {})
+        if own:
+            stats["warnings"] = own
+        row["stats_json"] = json.dumps(stats, sort_keys=True, default=_json_default)
+        row["warnings"] = WARNING_SEPARATOR.join(own)
     except InputError as exc:  # bad input: not a result; run_sweep stops and reports it
         row.update(_nan_result(time.perf_counter() - t0))
         row.update(status=INPUT_ERROR, message=exc.rule, input_field=exc.field)
@@ -308,6 +341,33 @@ class SweepOutcome:
         return self.n_done == self.n_points
 
 
+@dataclass(frozen=True)
+class PointPlan:
+    """Points other than the spec's grid, run by :func:`run_sweep` with their own task.
+
+    Used by studies that run many variants of one spec (e.g. the noise ensembles of
+    :mod:`schedforge.noise_ensemble`) through the same store, executors and progress.
+
+    Attributes
+    ----------
+    points : sequence
+        Hashable objects with ``family``, ``k_start``, ``k_end``, ``tf_ns``,
+        ``canonical()`` (text for the point key) and ``label()``.
+    task : callable
+        Picklable, module-level ``task(point) -> row`` (a store row, as
+        :func:`run_point` returns).
+    physics_hash : str
+        Keys the store (instead of ``spec.physics_hash()``).
+    physics : dict
+        Saved in the store's meta data.
+    """
+
+    points: Sequence[Any]
+    task: Callable[[Any], dict[str, Any]]
+    physics_hash: str
+    physics: dict[str, Any]
+
+
 def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
     """Check in this process what would fail identically at every point.
 
@@ -344,6 +404,7 @@ def run_sweep(
     retry_failed: bool = False,
     progress_stream: Any = None,
     after_point: Callable[[SweepPoint, dict[str, Any]], None] | None = None,
+    plan: PointPlan | None = None,
 ) -> SweepOutcome:
     """Compute every point of the spec's grid that is not yet stored in ``out_dir``.
 
@@ -369,6 +430,8 @@ def run_sweep(
         Where progress goes.
     after_point : callable, optional
         Called as ``after_point(point, row)`` after each point is committed.
+    plan : PointPlan, optional
+        Run these points with their task instead of the spec's grid.
 
     Returns
     -------
@@ -387,15 +450,16 @@ def run_sweep(
     folder = Path(out_dir)
     if folder.exists() and not folder.is_dir():
         raise InputError("--out", f"must be a directory, {folder} is a file")
-    points = sweep_points(spec)
+    points = sweep_points(spec) if plan is None else list(plan.points)
     warnings = _preflight(spec, points)
     folder.mkdir(parents=True, exist_ok=True)
     archived = archive_sweep_dir(folder) if fresh else None
-    physics_hash = spec.physics_hash()
+    physics_hash = spec.physics_hash() if plan is None else plan.physics_hash
+    physics = spec.physics_dict() if plan is None else plan.physics
     keys = {p: point_key(physics_hash, p) for p in points}
     spec_json = json.dumps(dataclasses.asdict(spec), sort_keys=True, default=_json_default)
     lost: list[tuple[SweepPoint, str]] = []
-    with PointStore(folder / STORE_NAME, physics_hash, physics=spec.physics_dict()) as store:
+    with PointStore(folder / STORE_NAME, physics_hash, physics=physics) as store:
         if retry_failed:
             store.forget(r["key"] for r in store.rows(keys.values()) if r["status"] != "ok")
         done_keys = store.keys()
@@ -418,13 +482,18 @@ def run_sweep(
             f"sweep: {len(points)} points, {len(points) - len(pending)} already in "
             f"{folder / STORE_NAME}, {len(pending)} to compute on {ex.describe()}"
             + (f" (old store archived to {archived})" if archived else "")
+            + _played_note(pending)
         )
         for w in warnings:
             reporter.log(f"warning: {w}")
         state = "interrupted"
         n_computed = 0
         try:
-            task = functools.partial(run_point, spec)
+            task = (
+                functools.partial(run_point, spec, common_warnings=tuple(warnings))
+                if plan is None
+                else plan.task
+            )
             for point, row in ex.map_unordered(task, pending):
                 if isinstance(row, TaskLost):
                     lost.append((point, row.reason))
@@ -533,17 +602,36 @@ def _num(value: float, fmt: str = ".3g") -> str:
     return format(value, fmt) if math.isfinite(value) else "-"
 
 
-def format_summary(outcome: SweepOutcome) -> str:
-    """Plain-text summary: one line per schedule, then failed and lost points.
+def _point_warning_lines(rows: Sequence[dict[str, Any]], limit: int = 5) -> list[str]:
+    """Count of points with warnings of their own, and the first few of them."""
+    warned = [r for r in rows if r.get("warnings")]
+    if not warned:
+        return []
+    out = [
+        f"{len(warned)} point(s) carry warnings of their own (column `warnings` of "
+        f"{POINTS_CSV_NAME}):"
+    ]
+    for r in warned[:limit]:
+        p = SweepPoint(r["family"], r["k_start"], r["k_end"], r["tf_ns"], variant=r["variant"])
+        out.append(f"  {p.label()}: {r['warnings']}")
+    if len(warned) > limit:
+        out.append(f"  ... and {len(warned) - limit} more")
+    return out
 
-    Error figures are shown only from points whose status is "ok".
+
+def format_summary(outcome: SweepOutcome) -> str:
+    """Plain-text summary: one line per schedule, then warnings, failed and lost points.
+
+    Error figures are shown only from points whose status is "ok"; ``warned``
+    counts the points with warnings of their own, the first of which are listed.
     """
     groups: dict[tuple[str, str, float, float], list[dict[str, Any]]] = {}
     for r in outcome.rows:
         groups.setdefault((r["family"], r["variant"], r["k_start"], r["k_end"]), []).append(r)
     head = (
         f"{'family':<10} {'variant':<9} {'k_start':>7} {'k_end':>6} {'points':>6} "
-        f"{'ok':>4} {'tf_ns range':>17} {'trace dist. at min..max tf (ok points)':>40}"
+        f"{'ok':>4} {'warned':>6} {'tf_ns range':>17} "
+        f"{'trace dist. at min..max tf (ok points)':>40}"
     )
     lines = [head, "-" * len(head)]
     for (fam, var, k0, k1), rows in groups.items():
@@ -556,8 +644,10 @@ def format_summary(outcome: SweepOutcome) -> str:
             err = f"{_num(lo['trace_distance'])} .. {_num(hi['trace_distance'])}"
         else:
             err = "no ok point"
+        warned = sum(1 for r in rows if r.get("warnings"))
         lines.append(
-            f"{fam:<10} {var:<9} {k0:>7g} {k1:>6g} {len(rows):>6} {len(ok):>4} {span:>17} {err:>40}"
+            f"{fam:<10} {var:<9} {k0:>7g} {k1:>6g} {len(rows):>6} {len(ok):>4} {warned:>6} "
+            f"{span:>17} {err:>40}"
         )
     lines.append(
         f"{outcome.n_done}/{outcome.n_points} points stored ({outcome.n_computed} computed now, "
@@ -566,6 +656,7 @@ def format_summary(outcome: SweepOutcome) -> str:
     )
     for w in outcome.warnings:
         lines.append(f"warning (every point): {w}")
+    lines += _point_warning_lines(outcome.rows)
     if outcome.failed:
         lines.append(f"points not ok ({outcome.n_failed}):")
         for r in outcome.failed:

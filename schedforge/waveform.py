@@ -123,6 +123,7 @@ __all__ = [
     "played_samples",
     "quantize",
     "realize",
+    "sampled_violations",
     "single_pole_tau_ns",
 ]
 
@@ -975,6 +976,29 @@ def realize(
     )
 
 
+def sampled_violations(
+    t_ns: ArrayLike, s: ArrayLike, ds_dt_per_ns: ArrayLike, waveform: Any
+) -> tuple[Violation, ...]:
+    """Limit violations of a sampled curve (e.g. the ideal design on a chosen grid).
+
+    Checks the spec's ``max_slope_per_ns`` against ``|ds/dt|`` and the range
+    [0, 1] of ``s`` at the given points; the other limits (rate, bits, filter)
+    describe a played waveform and do not apply to sampled values.
+    """
+    lim = _check_spec(waveform)
+    t = np.asarray(t_ns, dtype=float)
+    sv = np.asarray(s, dtype=float)
+    slope = np.asarray(ds_dt_per_ns, dtype=float)
+    found: list[Violation] = []
+    if lim["max_slope"] is not None:
+        found += _interval_violations(
+            "slope", t, slope, lim["max_slope"], np.abs(slope) > lim["max_slope"]
+        )
+    out_of_range = (sv < -1e-12) | (sv > 1.0 + 1e-12)
+    found += _interval_violations("range", t, np.where(sv < 0, sv, sv - 1.0), 0.0, out_of_range)
+    return tuple(sorted(found, key=lambda v: v.t_ns))
+
+
 def played_samples(realized: RealizedWaveform, curves: Any) -> Any:
     """The played points as a samples table for export.
 
@@ -994,7 +1018,7 @@ def played_samples(realized: RealizedWaveform, curves: Any) -> Any:
         the rate for held samples (0 after the last point); ``A_ghz``,
         ``B_ghz`` at the played s.  ``metadata`` says which it is.
     """
-    from .samples import SampleTable  # export layer
+    from .samples import SampleTable, toml_fields  # export layer
 
     t, s = realized.t_ns, realized.s
     slope = np.zeros_like(s)
@@ -1007,25 +1031,40 @@ def played_samples(realized: RealizedWaveform, curves: Any) -> Any:
         "levels": "jump points of the quantized waveform (held between points)",
         "analog": "end points only (no waveform limits given)",
     }[realized.mode]
+    rate = realized.schedule.model.get("sample_rate_gsps")
     grid = {
         "breakpoints": f"{t.size} breakpoints",
         "samples": "the device's sample grid"
-        + (f" ({realized.schedule.model['sample_rate_gsps']:g} GS/s)" if t.size > 2 else ""),
+        + (f" ({rate:g} GS/s)" if rate is not None and t.size > 2 else ""),
         "levels": f"{t.size} jump points",
         "analog": "end points",
     }[realized.mode]
+    bits = realized.schedule.model.get("dac_bits")
+    codes = None
+    if bits is not None and realized.mode in ("samples", "levels", "breakpoints"):
+        levels = 2 ** int(bits) - 1
+        codes = np.rint(s * levels).astype(np.int64)
+        if not np.allclose(codes / levels, s, rtol=0.0, atol=1e-12):
+            codes = None  # not the converter's levels: no code to state
     meta = {
         "grid": grid,
-        "played": kind,
-        "ds_dt_per_ns": "slope from each point to the next, as played",
-        "samples": str(t.size),
-        "waveform_model": " ".join(f"{k}={v}" for k, v in realized.schedule.model.items()),
-        "effective_k_end": str(realized.effective_k_end),
-        "max_deviation_from_design": repr(realized.max_deviation),
-        "limit_violations": str(len(realized.violations)),
-        "caution": "check against the device's documented limits and the lab's practice "
-        "before playing",
+        "export": kind,
+        "columns": "ds_dt_per_ns is the slope from each point to the next, as played",
+        "waveform": toml_fields(realized.schedule.model),
+        "waveform_check": toml_fields(
+            {
+                "effective_k_end": realized.effective_k_end,
+                "max_deviation_from_design": realized.max_deviation,
+                "limit_violations": len(realized.violations),
+            }
+        ),
     }
     return SampleTable(
-        t_ns=t, s=s, ds_dt_per_ns=slope, A_ghz=energies[0, 0], B_ghz=energies[1, 0], metadata=meta
+        t_ns=t,
+        s=s,
+        ds_dt_per_ns=slope,
+        A_ghz=energies[0, 0],
+        B_ghz=energies[1, 0],
+        metadata=meta,
+        dac_code=codes,
     )

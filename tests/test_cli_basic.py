@@ -26,7 +26,7 @@ import pytest
 import sympy as sp
 
 from schedforge import __version__
-from schedforge.samples import read_samples_csv
+from schedforge.samples import parse_fields, read_samples_csv
 from schedforge.spec import TEMPLATE, load_spec
 from schedforge.spec_model import Spec
 
@@ -98,7 +98,7 @@ def test_console_script_design_writes_csv_and_plot(tmp_path: Path) -> None:
     np.testing.assert_allclose(table.s, 1 - (1 - x) ** 3, rtol=1e-12, atol=1e-15)
     np.testing.assert_allclose(table.B_ghz, 2.5 * table.s, rtol=1e-12)
     assert table.metadata["spec"] == "builtin:driven-qubit"
-    assert table.metadata["family"] == "beta"
+    assert parse_fields(table.metadata["schedule"])["family"] == "beta"
     assert (tmp_path / "schedule.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
@@ -159,7 +159,8 @@ def test_design_points_and_round_trip(run_cli, write_spec, tmp_path: Path) -> No
     assert code == 0, err
     table = read_samples_csv(out)
     np.testing.assert_array_equal(table.t_ns, np.linspace(0.0, 40.0, 9))
-    assert float(table.metadata["k_start"]) == 2.0 and float(table.metadata["tf_ns"]) == 40.0
+    schedule = parse_fields(table.metadata["schedule"])
+    assert schedule["k_start"] == 2 and schedule["tf_ns"] == 40
 
 
 def test_design_uses_waveform_rate_from_spec(run_cli, write_spec, tmp_path: Path) -> None:

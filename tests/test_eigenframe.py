@@ -344,6 +344,7 @@ def _smallest_gap(system: System, level: int, near: float) -> float:
     return float(minimize_scalar(gap, bracket=(near - 0.01, near, near + 0.01), tol=1e-14).fun)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize(("j", "passed"), [(3e-4, True), (1e-3, False)])
 def test_narrow_crossing_matches_general(j: float, passed: bool) -> None:
     # j = 3e-4: gap 3.6e-7 rad/ns, below the frame's degeneracy tolerance (1.1e-6 rad/ns

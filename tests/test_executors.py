@@ -111,7 +111,7 @@ def test_make_executor_rejects_bad_options(kwargs, field, rule):
 
 def test_dask_missing_gives_install_hint(monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)
-    with pytest.raises(InputError, match=r"schedforge\[dask\]"):
+    with pytest.raises(InputError, match=r'pip install -e "\.\[dask\]"'):
         make_executor("dask", dask_local=1)
 
 

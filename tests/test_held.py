@@ -260,6 +260,7 @@ def _driven_qubit(eta: float = 1e-2) -> System:
     return System.from_spec(replace(spec, bath=replace(spec.bath, eta=eta)))
 
 
+@pytest.mark.slow
 def test_wide_gaussian_filter_approaches_the_held_result() -> None:
     # 1 qubit, tf = 20 ns, 1 GS/s, 3 bits: the filtered waveform (general integrator)
     # tends to the unfiltered hold (exact) as the bandwidth grows, at second order.

@@ -93,7 +93,7 @@ def test_report_is_self_contained_and_holds_every_plot(sweep_dir):
     assert not re.search(r'(src|href)="(https?:|file:|/)', text)
     # Cautions, tables and the spec.
     assert html.escape(CAUTION) in text
-    assert "regime_tf_min_ns" in text and "coefficient_predicted" in text
+    assert "regime tf (ns)" in text and "coefficient_predicted" in text  # header, its tooltip
     assert "[bath]" in text and "temperature_mk = 12.0" in text
 
 
@@ -144,3 +144,20 @@ def test_sweep_command_calls_the_analysis_hook(tmp_path, capsys):
         assert float(r["coefficient_fit"]) == pytest.approx(float(r["coefficient_predicted"]),
                                                             rel=0.01)  # fmt: skip
     assert (out / "report.html").is_file() and (out / "spec.toml").is_file()
+
+
+def test_predicted_trace_distance_is_never_drawn_above_one():
+    """A trace distance is at most 1 (||rho - sigma||_1 / 2 of two states; Nielsen and
+    Chuang 2000): the predicted line C tf^-(k+1) is not drawn where it exceeds 1."""
+    from schedforge.analysis import fit_scaling
+    from schedforge.plotting.scaling import plot_error_vs_tf
+
+    tf = np.geomspace(10.0, 1e4, 8)
+    fit = fit_scaling(tf, 1e-3 * tf**-2.0, k_end=1, family="beta", coefficient_predicted=1e5)
+    fig = plot_error_vs_tf(fit)
+    (pred,) = [ln for ln in fig.axes[0].get_lines() if ln.get_label().startswith("predicted")]
+    y = np.asarray(pred.get_ydata(), dtype=float)
+    assert np.nanmax(y) <= 1.0
+    assert np.isfinite(y).sum() > 10  # the part below 1 is still drawn
+    t = np.asarray(pred.get_xdata(), dtype=float)
+    assert np.isnan(y[t < np.sqrt(1e5) * 0.99]).all()  # C tf^-2 > 1 below tf = 316 ns

@@ -24,7 +24,9 @@ from schedforge.fileio import atomic_write, atomic_write_text
 from schedforge.samples import (
     COLUMNS,
     DEFAULT_POINTS,
+    HEADER_LINES,
     SampleTable,
+    parse_fields,
     read_samples_csv,
     sample_schedule,
     samples_metadata,
@@ -126,13 +128,13 @@ def test_csv_round_trip_is_exact_and_readable_by_numpy(tmp_path: Path) -> None:
     back = read_samples_csv(path)
     np.testing.assert_array_equal(back.as_array(), table.as_array())
     meta = back.metadata
-    assert meta["family"] == "beta"
-    assert float(meta["k_start"]) == 0.0 and float(meta["k_end"]) == 2.0
-    assert float(meta["tf_ns"]) == tf
-    assert meta["device.curves"] == "linear" and float(meta["device.A0_ghz"]) == 3.5
+    schedule = parse_fields(meta["schedule"])
+    assert schedule == {"family": "beta", "k_start": 0, "k_end": 2, "tf_ns": tf}
+    device = parse_fields(meta["device"])
+    assert device == {"curves": "linear", "A0_ghz": 3.5, "B0_ghz": 2.5}
     assert meta["schedforge_version"]
     assert datetime.fromisoformat(meta["created_utc"]).utcoffset().total_seconds() == 0
-    assert "GHz" in meta["units"] and "ns" in meta["units"]
+    assert "GHz" in meta["columns"] and "ns" in meta["columns"]
     assert meta["grid"] == "257 evenly spaced points"
 
 
@@ -202,3 +204,95 @@ def test_plot_schedule_draws_s_and_its_time_derivatives() -> None:
         ref = [1 - (1 - x) ** 3, 3 * (1 - x) ** 2 / tf, -6 * (1 - x) / tf**2][order]
         np.testing.assert_allclose(y, ref, rtol=1e-12, atol=1e-18)
     assert "first 2 derivative(s) vanish" in axes[0].texts[0].get_text()
+
+
+# -- files a lab reads (issue 15) ---------------------------------------------------
+_LAB_SCHEDULES = [
+    make_schedule("linear"),
+    make_schedule("beta", k_start=1, k_end=3),
+    make_schedule("poly", k_end=2, tail=0.3),
+    make_schedule("points", points=((0.0, 0.0), (0.5, 0.4), (1.0, 1.0)), k_end=2),
+    make_schedule("gevrey", k_start=1),
+]
+
+
+def _played_table() -> tuple[SampleTable, dict[str, str]]:
+    from schedforge.spec_model import WaveformSpec
+    from schedforge.waveform import played_samples, realize
+
+    sched = make_schedule("beta", k_start=0, k_end=2)
+    realized = realize(sched, 40.0, WaveformSpec(sample_rate_gsps=0.5, dac_bits=10))
+    return played_samples(realized, CURVES), samples_metadata(sched, 40.0, CURVES)
+
+
+def test_every_samples_file_has_the_same_header_length(tmp_path: Path) -> None:
+    """Every file reads with one line (the README's recipe), whatever it holds."""
+    tables = [
+        (sample_schedule(s, 30.0, CURVES, points=7), samples_metadata(s, 30.0, CURVES))
+        for s in _LAB_SCHEDULES
+    ]
+    tables.append(_played_table())
+    for i, (table, meta) in enumerate(tables):
+        path = tmp_path / f"s{i}.csv"
+        write_samples_csv(path, table, {"spec": "x.toml", **meta})
+        lines = path.read_text().splitlines()
+        n_hash = next(j for j, line in enumerate(lines) if not line.startswith("#"))
+        assert n_hash == HEADER_LINES == 12
+        assert lines[0].startswith(f"# schedforge schedule samples: {HEADER_LINES} '#' lines")
+        # the README's NumPy recipe
+        data = np.genfromtxt(path, delimiter=",", names=True, skip_header=12)
+        assert data.dtype.names == table.columns
+        np.testing.assert_array_equal(data["s"], table.s)
+        try:
+            import pandas as pd
+        except ImportError:
+            continue
+        frame = pd.read_csv(path, skiprows=12)  # the README's pandas recipe
+        assert tuple(frame.columns) == table.columns
+        np.testing.assert_array_equal(frame["s"].to_numpy(), table.s)
+
+
+def test_parameters_are_toml_fields_not_python_dicts(tmp_path: Path) -> None:
+    import tomllib
+
+    sched = _LAB_SCHEDULES[2]  # poly: a nested base schedule
+    path = tmp_path / "p.csv"
+    write_samples_csv(
+        path, sample_schedule(sched, 30.0, CURVES, points=3), samples_metadata(sched, 30.0, CURVES)
+    )
+    header = dict(line[2:].split(": ", 1) for line in path.read_text().splitlines()[1:12])
+    assert "{'" not in header["schedule"]  # no Python dict repr
+    parsed = tomllib.loads(f"x = {{{header['schedule']}}}")["x"]  # TOML 1.0 inline table
+    assert parsed["family"] == "poly" and parsed["tail"] == 0.3 and parsed["k_end"] == 2
+    assert parsed["base"] == {"family": "linear", "k_start": 0, "k_end": 0}
+    assert header["waveform"] == "none"
+
+
+def test_numbers_are_written_without_float_noise(tmp_path: Path) -> None:
+    """Each number is the shortest decimal that reads back to the same double.
+
+    %.17g wrote 0.1 * 3 as 0.30000000000000004 and 0.25 as 0.25 but 0.1 as
+    0.10000000000000001; the shortest round-trip form is Python's repr (Steele and
+    White 1990 / Gay 1990 shortest-digit printing).
+    """
+    sched = make_schedule("linear")
+    table = sample_schedule(sched, 1.0, CURVES, rate_gsps=10.0)
+    path = tmp_path / "r.csv"
+    write_samples_csv(path, table, samples_metadata(sched, 1.0, CURVES))
+    rows = [line.split(",") for line in path.read_text().splitlines()[13:]]
+    assert [r[0] for r in rows[:4]] == ["0.0", "0.1", "0.2", "0.3"]  # t = n / R
+    for row in rows:
+        for cell in row:
+            assert cell == repr(float(cell))
+    np.testing.assert_array_equal(read_samples_csv(path).as_array(), table.as_array())
+
+
+def test_dac_code_column_round_trips(tmp_path: Path) -> None:
+    table, meta = _played_table()
+    path = tmp_path / "d.csv"
+    write_samples_csv(path, table, meta)
+    back = read_samples_csv(path)
+    assert back.columns == (*COLUMNS, "dac_code")
+    np.testing.assert_array_equal(back.dac_code, table.dac_code)
+    np.testing.assert_array_equal(back.dac_code / 1023.0, back.s)  # s = j / (2^10 - 1)
+    assert parse_fields(back.metadata["waveform"])["dac_bits"] == 10

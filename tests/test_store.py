@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import math
 import sqlite3
+import subprocess
+import sys
 
 import pytest
 
@@ -18,6 +20,7 @@ from schedforge.store import (
     STORE_NAME,
     PointStore,
     archive_sweep_dir,
+    folder_lock,
     read_points_csv,
     write_points_csv,
 )
@@ -106,14 +109,38 @@ def test_other_physics_refused_with_out_and_fresh(tmp_path):
     PointStore(tmp_path / STORE_NAME, HASH_A).close()
 
 
+def _open_in_other_process(path) -> str:
+    """Open a writer on ``path`` in a second process; return its error text ('' if none)."""
+    code = (
+        "import sys\n"
+        "from schedforge.store import PointStore\n"
+        "from schedforge.errors import InputError\n"
+        "try:\n"
+        f"    PointStore({str(path)!r}, {HASH_A!r}).close()\n"
+        "except InputError as e:\n"
+        "    print(e)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    return done.stdout
+
+
 def test_second_writer_refused_while_first_open(tmp_path):
     first = PointStore(tmp_path / STORE_NAME, HASH_A)
     try:
-        with pytest.raises(InputError, match="in use by another running sweep"):
-            PointStore(tmp_path / STORE_NAME, HASH_A)
+        assert "in use by another running sweep" in _open_in_other_process(tmp_path / STORE_NAME)
+        # The lock is re-entrant within the process that holds it.
+        PointStore(tmp_path / STORE_NAME, HASH_A).close()
+        assert "in use" in _open_in_other_process(tmp_path / STORE_NAME)
     finally:
         first.close()
-    PointStore(tmp_path / STORE_NAME, HASH_A).close()  # lock released
+    assert _open_in_other_process(tmp_path / STORE_NAME) == ""  # lock released
+
+
+def test_folder_lock_held_across_the_with_block(tmp_path):
+    with folder_lock(tmp_path):
+        assert "in use" in _open_in_other_process(tmp_path / STORE_NAME)
+    assert _open_in_other_process(tmp_path / STORE_NAME) == ""
 
 
 def test_archive_moves_store_and_csv(tmp_path):

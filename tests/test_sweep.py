@@ -256,6 +256,7 @@ def dask_address():
     cluster.close()
 
 
+@pytest.mark.slow
 def test_executors_give_identical_points_csv(tmp_path, write_spec, dask_address):
     from schedforge.dynamics import simulate_spec
     from schedforge.executors import make_executor
@@ -282,6 +283,7 @@ def test_executors_give_identical_points_csv(tmp_path, write_spec, dask_address)
     assert row["ground_infidelity"] == direct.ground_infidelity
 
 
+@pytest.mark.slow
 def test_sigkill_then_rerun_completes_without_loss_or_repeat(tmp_path, write_spec):
     import os
     import signal
@@ -321,7 +323,8 @@ def test_sigkill_then_rerun_completes_without_loss_or_repeat(tmp_path, write_spe
     per_run = dict(con.execute("SELECT run_id, COUNT(*) FROM points GROUP BY run_id"))
     runs = con.execute("SELECT run_id, state, n_pending FROM runs ORDER BY run_id").fetchall()
     con.close()
-    assert runs[0][1] == "running"  # the killed run never got to record its end
+    # The killed run never recorded its end; the rerun, holding the lock, marks it.
+    assert runs[0][1] == "abandoned"
     assert runs[1][1:] == ("complete", total - n_first)
     assert per_run == {1: n_first, 2: total - n_first}  # nothing computed twice
 
@@ -537,3 +540,48 @@ def test_lost_points_not_stored_and_reported(tmp_path, write_spec):
         assert store.runs()[-1]["state"] == "incomplete"
     again = run_sweep(spec, out, executor="serial", progress="quiet")  # rerun retries it
     assert again.complete and again.n_computed == 1 and again.n_skipped == 3
+
+
+# -- families without a k; per-point warnings (issue 14) -------------------------------
+def test_gevrey_is_computed_once_per_tf_not_once_per_k_end():
+    """gevrey is flat to every order at the end whatever k_end says: one point per tf."""
+    spec = _spec(tf_ns=(10.0, 20.0), k_end=(1.0, 2.0, 3.0), family=("beta", "gevrey", "linear"))
+    pts = sweep_points(spec)
+    gev = [p for p in pts if p.family == "gevrey"]
+    assert [(p.k_end, p.tf_ns) for p in gev] == [(0.0, 10.0), (0.0, 20.0)]
+    assert len([p for p in pts if p.family == "beta"]) == 6
+    assert len([p for p in pts if p.family == "linear"]) == 2
+
+
+def test_point_warnings_reach_points_csv_summary_and_report(tmp_path):
+    """At 1000 ns the driven qubit is 2.8 final relaxation times into the anneal: each such
+    point carries the warning in points.csv, the console summary counts it, and the
+    report shows it beside the point; the 3000 ns points carry none."""
+    import csv
+
+    from schedforge.report import analyse_sweep_dir
+    from schedforge.spec import load_spec
+    from schedforge.store import WARNING_SEPARATOR
+    from schedforge.sweep import format_summary, run_sweep
+
+    base = load_spec("builtin:driven-qubit")
+    spec = replace(
+        base, sweep=SweepSpec(tf_ns=(1000.0, 3000.0), k_end=(1.0, 2.0), family=("beta", "gevrey"))
+    )
+    out = run_sweep(spec, tmp_path, executor="serial", progress="quiet")
+    assert out.n_points == 6  # beta 2 k_end x 2 tf, gevrey 2 tf
+    with open(out.csv_path, newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert "warnings" in rows[0]
+    for r in rows:
+        warned = "short against the final relaxation time" in r["warnings"]
+        assert warned == (float(r["tf_ns"]) == 1000.0), r
+        # sweep-wide (pre-flight) warnings are not repeated per point
+        assert all(w not in r["warnings"].split(WARNING_SEPARATOR) for w in out.warnings)
+    summary = format_summary(out)
+    assert "3 point(s) carry warnings of their own" in summary
+    assert "warned" in summary.splitlines()[0]
+    analysis = analyse_sweep_dir(tmp_path, spec)
+    text = analysis.report_html.read_text()
+    assert "3 of 6 points carry warnings of their own" in text
+    assert "short against the final relaxation time" in text

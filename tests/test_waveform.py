@@ -281,7 +281,10 @@ def test_played_samples_table_for_export() -> None:
     np.testing.assert_allclose(table.A_ghz, 3.5 * (1 - r.s), rtol=1e-15)
     np.testing.assert_allclose(table.ds_dt_per_ns[:-1], np.diff(r.s) / 2.0, rtol=1e-15)
     assert table.ds_dt_per_ns[-1] == 0.0
-    assert "held samples" in table.metadata["played"]
+    assert "held samples" in table.metadata["export"]
+    # the converter codes j of s = j / (2^6 - 1) (uniform quantizer: common practice, no source)
+    np.testing.assert_array_equal(table.dac_code / 63.0, r.s)
+    assert table.dac_code.dtype.kind == "i" and table.dac_code.max() == 63
 
 
 def test_plot_waveform_draws_design_and_played() -> None:

@@ -32,6 +32,8 @@ COMMAND_MODULES: list[str] = [
     "schedforge.cli.sweep",
     "schedforge.cli.report",
     "schedforge.cli.budget",
+    "schedforge.cli.precision",
+    "schedforge.cli.noise_sweep",
     "schedforge.cli.demo",
 ]
 

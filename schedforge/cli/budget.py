@@ -18,8 +18,10 @@ def register(subparsers: Any) -> None:
         help="rank schedules and k_end by the anneal time that meets an error budget",
         description="Predict, for every family and k_end of the spec's sweep grid (or those "
         "given), the anneal time tf = (C_k / EPS)^(1/(k+1)) at which the trace distance to "
-        "the final steady state meets EPS; check that tf lies in the equilibrated regime; "
-        "confirm the best candidates with a real simulation.",
+        "the final steady state meets EPS; estimate whether tf lies in the regime where the "
+        "law holds; confirm the fastest candidates with a real simulation (a candidate is "
+        "confirmed when its simulated error is <= EPS, no tolerance, and within 10%% of the "
+        "law; tf is lengthened by the measured shortfall when needed).",
     )
     add_spec_argument(p)
     p.add_argument(
@@ -44,7 +46,7 @@ def register(subparsers: Any) -> None:
         type=int,
         default=2,
         metavar="N",
-        help="simulate the N best candidates at their recommended tf (default 2; 0: none)",
+        help="simulate the N fastest candidates, shortest predicted tf first (default 2; 0: none)",
     )
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(handler=run)

@@ -8,13 +8,20 @@ from collections.abc import Callable
 from pathlib import Path
 
 from ..errors import InputError
+from ..fileio import writable_folder_problem
 
 __all__ = [
+    "EXIT_LIMIT_VIOLATION",
     "add_spec_argument",
+    "check_output_dir",
     "check_output_path",
+    "nonnegative_float",
     "positive_float",
     "positive_int",
 ]
+
+#: Exit status of ``design`` when the waveform breaks a limit of the spec's [waveform].
+EXIT_LIMIT_VIOLATION = 3
 
 
 def positive_float(option: str) -> Callable[[str], float]:
@@ -33,6 +40,21 @@ def positive_float(option: str) -> Callable[[str], float]:
             raise argparse.ArgumentTypeError(f"must be a number > 0, got {text!r}") from None
         if not (math.isfinite(value) and value > 0):
             raise argparse.ArgumentTypeError(f"must be a number > 0, got {text!r}")
+        return value
+
+    return parse
+
+
+def nonnegative_float(option: str) -> Callable[[str], float]:
+    """An argparse ``type`` accepting a finite number >= 0 (``option`` names it on error)."""
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}") from None
+        if not (math.isfinite(value) and value >= 0):
+            raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}")
         return value
 
     return parse
@@ -66,17 +88,39 @@ def add_spec_argument(parser: argparse.ArgumentParser) -> None:
 
 
 def check_output_path(path: str, option: str) -> Path:
-    """Check that an output path can be written: its folder exists, it is not a folder.
+    """Check that an output file can be written: its folder exists and takes new files.
 
     Raises
     ------
     InputError
-        Naming ``option``.
+        Naming ``option``: an empty path, a folder, a folder that does not exist,
+        is a file, or cannot be written to.
     """
     p = Path(path)
     if not path or p.is_dir():
         raise InputError(option, f"must name a file, got {path!r}")
-    folder = p.parent
-    if not folder.is_dir():
-        raise InputError(option, f"must be in an existing folder; {str(folder)!r} does not exist")
+    problem = writable_folder_problem(p.parent)
+    if problem is not None:
+        raise InputError(option, f"cannot be written to {path!r}: {problem}")
+    return p
+
+
+def check_output_dir(path: str, option: str) -> Path:
+    """Check that an output folder exists and takes new files, or can be created.
+
+    Raises
+    ------
+    InputError
+        Naming ``option``: the path is a file, or neither it nor the nearest
+        existing folder above it can be written to.
+    """
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise InputError(option, f"must be a folder; {path!r} is a file")
+    existing = p
+    while not existing.exists() and existing.parent != existing:
+        existing = existing.parent
+    problem = writable_folder_problem(existing)
+    if problem is not None:
+        raise InputError(option, f"cannot be written to {path!r}: {problem}")
     return p

@@ -5,24 +5,21 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 from typing import Any
 
+from ..analysis import DEFAULT_FLOOR_FACTOR, numerical_floor
 from ..dynamics import SimulationResult, simulate_spec
+from ..errors import InputError
 from ..progress import AnnealProgress, anneal_progress
 from ..spec import load_spec
-from .options import add_spec_argument, positive_float
+from .options import add_spec_argument, nonnegative_float, positive_float
 
 __all__ = ["format_result", "register", "run"]
 
 
-def _k_value(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}") from None
-    if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"must be a number >= 0, got {text!r}")
-    return value
+#: What the progress line says while a played waveform is simulated.
+PLAYED_NOTE = "played waveform: far slower than the design (it follows every sample)"
 
 
 def register(subparsers: Any) -> None:
@@ -46,9 +43,16 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument(
         "--k-end",
-        type=_k_value,
+        type=nonnegative_float("--k-end"),
         default=None,
         help="number of vanishing derivatives at the end (default: schedule.k_end)",
+    )
+    parser.add_argument(
+        "--as-played",
+        action="store_true",
+        help="simulate the waveform the device plays (the spec's [waveform] model: samples, "
+        "quantization, filter or breakpoints) instead of the ideal design; this costs far "
+        "more (one qubit at 3 us: about 16 s instead of 0.05 s)",
     )
     parser.add_argument(
         "--json",
@@ -74,6 +78,12 @@ def _clean(value: Any) -> Any:
     return value
 
 
+def _floor(result: SimulationResult) -> float:
+    """The numerical floor the analysis uses for this result (nan without an atol)."""
+    atol = result.stats.get("atol")
+    return numerical_floor(float(atol)) if atol is not None else math.nan
+
+
 def format_result(result: SimulationResult) -> str:
     """A readable multi-line summary of one simulation."""
     lines = [
@@ -81,13 +91,21 @@ def format_result(result: SimulationResult) -> str:
         f"(k_start = {result.k_start:g}, k_end = {result.k_end:g}), "
         f"{result.variant}",
         f"anneal time     {result.tf_ns:g} ns",
-        f"integrator      {result.integrator} ({result.stats.get('steps', '?')} steps, "
-        f"{result.stats.get('rhs_evaluations', '?')} rhs evaluations, {result.wall_s:.2f} s)",
+        f"integrator      {result.integrator} ({_work(result.stats)}{result.wall_s:.2f} s)",
         f"status          {result.status}",
     ]
     if result.ok:
+        floor = _floor(result)
         lines += [
             f"trace distance  {result.trace_distance:.6e}   (||rho(tf) - sigma(1)||_1 / 2)",
+        ]
+        if result.trace_distance <= floor:
+            lines.append(
+                f"                below the numerical floor {floor:.2g} (= "
+                f"{DEFAULT_FLOOR_FACTOR:g} x numerics.atol): not resolved by the integrator, "
+                f"read it as < {floor:.2g}"
+            )
+        lines += [
             f"ground infid.   {result.ground_infidelity:.6e}   (1 - <ground|rho(tf)|ground>)",
             f"excess energy   {result.excess_energy_ghz:.6e} GHz "
             "(tr H(1)(rho(tf) - sigma(1)), E/h)",
@@ -102,22 +120,45 @@ def format_result(result: SimulationResult) -> str:
             f"(min {result.stats['liouvillian_gap_min_ghz']:.4g}"
             f" GHz at s = {result.stats['s_at_liouvillian_gap_min']:.3f})"
         )
-    for w in result.warnings:
-        lines.append(f"warning: {w}")
     return "\n".join(lines)
+
+
+def _work(stats: dict[str, Any]) -> str:
+    """The integrator's work counts that it reports, e.g. ``"29 steps, "``."""
+    parts = [
+        f"{stats[key]} {words}"
+        for key, words in (("steps", "steps"), ("rhs_evaluations", "right-hand-side evaluations"))
+        if isinstance(stats.get(key), int) and stats[key] > 0
+    ]
+    return "".join(f"{p}, " for p in parts)
 
 
 def run(args: argparse.Namespace) -> int:
     """Run the command; bad input raises InputError (exit 2 via the CLI)."""
     spec = load_spec(args.spec)
-    progress = AnnealProgress(mode="quiet" if args.quiet else "auto")
+    if args.as_played and spec.waveform is None:
+        raise InputError("--as-played", "needs a [waveform] section in the spec (what is played)")
+    progress = AnnealProgress(
+        mode="quiet" if args.quiet else "auto", note=PLAYED_NOTE if args.as_played else ""
+    )
     try:
         with anneal_progress(progress):
-            result = simulate_spec(spec, tf_ns=args.tf_ns, k_end=args.k_end)
+            result = simulate_spec(
+                spec,
+                tf_ns=args.tf_ns,
+                k_end=args.k_end,
+                variant="realized" if args.as_played else "ideal",
+            )
     finally:
         progress.finish()
     if args.json:
-        print(json.dumps(_clean(result.to_dict()), indent=2, sort_keys=True))
+        data = result.to_dict()
+        floor = _floor(result)
+        data["numerical_floor"] = floor
+        data["below_numerical_floor"] = bool(result.ok and result.trace_distance <= floor)
+        print(json.dumps(_clean(data), indent=2, sort_keys=True))
     else:
         print(format_result(result))
+        for w in result.warnings:  # like the other commands: warnings on stderr
+            print(f"warning: {w}", file=sys.stderr)
     return 0 if result.ok else 1

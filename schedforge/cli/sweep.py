@@ -5,7 +5,13 @@ same command after a crash, Ctrl-C or ``kill -9`` computes only the missing poin
 ``DIR/points.csv`` is regenerated from the store at the end.  When the analysis
 module provides ``analyse_sweep_dir(out_dir, spec)``, it is called after a
 complete sweep to add the fits and the report to ``DIR`` (not with
-``--points-only``).
+``--points-only``, which moves an older study's fits and report to
+``DIR/archive/`` instead, so that they never sit beside points they were not
+made from).
+
+The folder's lock is held from the start (and the ``--fresh`` archive) until the
+fits and the report are written: no other sweep or report can change the folder
+meanwhile.
 """
 
 from __future__ import annotations
@@ -17,7 +23,8 @@ from typing import Any
 
 from ..errors import InputError
 from ..executors import EXECUTOR_KINDS, make_executor
-from .options import add_spec_argument, positive_int
+from ..store import POINTS_CSV_NAME, STUDY_OUTPUTS, archive_outputs, folder_lock
+from .options import add_spec_argument, check_output_dir, positive_int
 
 __all__ = ["register", "run"]
 
@@ -64,7 +71,8 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--fresh",
         action="store_true",
-        help="archive an existing store in DIR (to DIR/archive/<time>/) and start over",
+        help="move the study in DIR (store, points.csv, fits, spec copy, plots, report; a "
+        "damaged store intact) to DIR/archive/<time>/ and start over",
     )
     p.add_argument(
         "--retry-failed",
@@ -106,15 +114,24 @@ def run(args: argparse.Namespace) -> int:
     130: interrupted (Ctrl-C); the finished points are stored.
     """
     from ..spec import load_spec
-    from ..sweep import format_summary, run_sweep
 
     kind = _executor_kind(args)
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise InputError("--out", f"must be a directory, {out} is a file")
+    out = check_output_dir(args.out, "--out")
     spec = load_spec(args.spec)
+    out.mkdir(parents=True, exist_ok=True)
+    with folder_lock(out):
+        return _run_locked(args, spec, kind, out)
+
+
+def _run_locked(args: argparse.Namespace, spec: Any, kind: str, out: Path) -> int:
+    """The sweep, its points.csv, fits and report, with the folder lock held."""
+    from ..limits import check_memory
+    from ..sweep import format_summary, run_sweep
+
     progress = "quiet" if args.quiet else "auto"
     with make_executor(kind, args.workers, args.scheduler, args.dask_local) as ex:
+        local = 1 + (getattr(ex, "workers", 1) if kind == "processes" else 0)
+        check_memory(spec.problem.qubits, workers=local)  # the main process and its workers
         try:
             outcome = run_sweep(
                 spec,
@@ -134,8 +151,17 @@ def run(args: argparse.Namespace) -> int:
     if not args.quiet:
         print(format_summary(outcome))
         if outcome.archived is not None:
-            print(f"old store archived to {outcome.archived}")
+            print(f"old study archived to {outcome.archived}")
         print(f"wrote {outcome.csv_path}")
+    if args.points_only:
+        stale = [n for n in STUDY_OUTPUTS if n != POINTS_CSV_NAME]
+        moved = archive_outputs(out, stale)
+        if moved is not None:
+            print(
+                f"note: fits and report made from earlier points moved to {moved} "
+                f"(`schedforge report {out}` makes new ones)",
+                file=sys.stderr,
+            )
     if not outcome.complete:
         print(
             f"error: sweep incomplete: {outcome.n_points - outcome.n_done} of "

@@ -16,14 +16,20 @@ from matplotlib.figure import Figure
 from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
+from ..error_law import NO_K_END_FAMILIES
 from ..schedules import Schedule
 
 __all__ = [
+    "BOUNDED_METRICS",
     "plot_error_vs_tf",
     "plot_gap",
     "plot_local_slopes",
     "plot_schedule_derivatives",
 ]
+
+
+#: Error metrics that cannot exceed 1 (predicted lines are not drawn above it).
+BOUNDED_METRICS: frozenset[str] = frozenset({"trace_distance", "ground_infidelity"})
 
 
 def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
@@ -36,9 +42,38 @@ def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
 
 
 def _label(fit: ScalingFit) -> str:
-    k = "" if fit.family == "linear" else f" k_end={fit.k_end:g}"
+    k = "" if fit.family in NO_K_END_FAMILIES else f" k_end={fit.k_end:g}"
     v = "" if fit.variant == "ideal" else f" ({fit.variant})"
     return f"{fit.family}{k}{v}"
+
+
+def _power_unit(power: float) -> str:
+    """``ns^power`` in mathtext: the unit of C_k in err = C_k / tf^power (power = k + 1)."""
+    return f"ns$^{{{power:g}}}$" if math.isfinite(power) else ""
+
+
+def _data_limits(values: ArrayLike, margin: float = 3.0) -> tuple[float, float] | None:
+    """Log-axis limits that hold the positive finite ``values`` with a margin factor."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v) & (v > 0)]
+    if not v.size:
+        return None
+    return float(v.min()) / margin, float(v.max()) * margin
+
+
+def _legend_below(ax: Axes, ncol: int = 2) -> None:
+    """A legend under the axes, off the data; none when nothing is labelled."""
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        ax.legend(
+            handles,
+            labels,
+            fontsize=7,
+            loc="upper center",
+            bbox_to_anchor=(0.5, -0.2),
+            ncol=ncol,
+            frameon=False,
+        )
 
 
 def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
@@ -47,9 +82,12 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     Filled markers: usable points; open grey markers: points not fitted (at the
     numerical floor or failed); large ring: the fitted regime.  Solid line: the
     fitted power law over the regime; dashed: the predicted law
-    ``C_k tf^-(k+1)``; dotted: the numerical floor.
+    ``C_k tf^(expected slope)``, not drawn where it would exceed 1 for a bounded
+    metric (a trace distance is at most 1); dotted: the numerical floor (drawn when it
+    lies within the data's range).  The y axis is fitted to the points, not to the
+    floor or the lines; the legend sits under the axes.
     """
-    fig, ax = _axes(ax, (5.0, 3.8))
+    fig, ax = _axes(ax, (5.0, 4.3))
     tf = np.asarray(fit.tf_ns)
     err = np.asarray(fit.error)
     use = np.asarray(fit.usable, dtype=bool)
@@ -72,22 +110,46 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
             color="C1",
             label=f"fit: slope {fit.slope:.3f}",
         )
-    if math.isfinite(fit.coefficient_predicted) and tf.size:
+    if math.isfinite(fit.coefficient_predicted) and math.isfinite(fit.expected_slope) and tf.size:
         t_line = np.geomspace(tf.min(), tf.max(), 50)
-        ax.loglog(
-            t_line,
-            fit.coefficient_predicted * t_line ** -(fit.k_end + 1.0),
-            "--",
-            color="C2",
-            label=f"predicted: C={fit.coefficient_predicted:.3g}",
+        predicted = fit.coefficient_predicted * t_line**fit.expected_slope
+        if fit.metric in BOUNDED_METRICS:
+            # a trace distance (or an infidelity) is at most 1: the law says nothing above
+            predicted = np.where(predicted <= 1.0, predicted, np.nan)
+        if np.isfinite(predicted).any():
+            ax.loglog(
+                t_line,
+                predicted,
+                "--",
+                color="C2",
+                label=f"predicted: $C_{{{fit.k_end:g}}}$ = {fit.coefficient_predicted:.3g} "
+                + _power_unit(-fit.expected_slope),
+            )
+    limits = _data_limits(err[finite])
+    if limits is None:  # nothing to scale to: say so instead of an empty frame
+        ax.text(
+            0.5,
+            0.5,
+            f"no point with an error to draw ({tf.size} point(s), none successful)",
+            transform=ax.transAxes,
+            ha="center",
+            va="center",
+            fontsize=9,
         )
-    if fit.floor > 0:
-        ax.axhline(fit.floor, color="0.4", linestyle=":", linewidth=1.0, label="numerical floor")
+    else:
+        if fit.floor > 0 and limits[0] <= fit.floor <= limits[1]:
+            ax.axhline(
+                fit.floor, color="0.4", linestyle=":", linewidth=1.0, label="numerical floor"
+            )
+        ax.set_ylim(*limits)
+    t_lim = _data_limits(tf, margin=1.5)
+    if t_lim is not None:
+        ax.set_xlim(*t_lim)
     ax.set_xlabel("tf (ns)")
     ax.set_ylabel(fit.metric.replace("_", " "))
     ax.set_title(f"{_label(fit)}: {fit.verdict}", fontsize=10)
     ax.grid(alpha=0.3, which="both")
-    ax.legend(fontsize=7, loc="lower left")
+    _legend_below(ax)
     return fig
 
 
@@ -95,26 +157,40 @@ def plot_local_slopes(fits: Sequence[ScalingFit], ax: Axes | None = None) -> Fig
     """Local slopes d log(err) / d log(tf) vs tf for several schedules.
 
     Each slope is drawn at the geometric mean of its two tf values; the
-    expected slope -(k_end + 1) of each schedule is a dashed line of the same
+    expected slope of each schedule's error law is a dashed line of the same
     colour.
     """
-    fig, ax = _axes(ax, (6.0, 4.0))
+    fig, ax = _axes(ax, (7.0, 4.0))
+    drawn = 0
     for i, fit in enumerate(fits):
         color = f"C{i % 10}"
         tf = np.asarray(fit.tf_ns)
-        slopes = np.asarray(fit.slopes)
-        if tf.size < 2:
-            continue
+        slopes = np.asarray(fit.slopes, dtype=float)
+        if tf.size < 2 or not np.isfinite(slopes).any():
+            continue  # nothing to draw: no entry in the legend either
         mid = np.sqrt(tf[:-1] * tf[1:])
         style = "o-" if fit.variant == "ideal" else "s:"
         ax.semilogx(mid, slopes, style, color=color, ms=4, label=_label(fit))
         if math.isfinite(fit.expected_slope):
             ax.axhline(fit.expected_slope, color=color, linestyle="--", linewidth=0.8)
+        drawn += 1
     ax.set_xlabel("tf (ns)")
     ax.set_ylabel("local slope d log(err) / d log(tf)")
     ax.grid(alpha=0.3, which="both")
-    if fits:
-        ax.legend(fontsize=7)
+    if drawn:
+        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False)
+    else:
+        ax.text(
+            0.5,
+            0.5,
+            "no local slopes: no schedule has two successful points in a row",
+            transform=ax.transAxes,
+            ha="center",
+            va="center",
+            fontsize=9,
+        )
+        ax.set_xticks([])
+        ax.set_yticks([])
     return fig
 
 
@@ -150,7 +226,7 @@ def plot_schedule_derivatives(
         panel.set_ylabel("f(x)" if order == 0 else f"f^({order})(x)")
         panel.axhline(0.0, color="0.6", linewidth=0.6)
         panel.grid(alpha=0.3)
-    axes[0].legend(fontsize=7)
+    axes[0].legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False)
     axes[-1].set_xlabel("x = t / tf")
     return fig
 
@@ -173,5 +249,5 @@ def plot_gap(
     ax.set_xlabel("s")
     ax.set_ylabel("GHz")
     ax.grid(alpha=0.3, which="both")
-    ax.legend(fontsize=8)
+    _legend_below(ax)
     return fig

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 from matplotlib.axes import Axes
@@ -10,7 +11,7 @@ from matplotlib.figure import Figure
 
 from ..waveform import RealizedWaveform
 
-__all__ = ["plot_waveform"]
+__all__ = ["plot_played", "plot_waveform"]
 
 
 def plot_waveform(
@@ -102,4 +103,50 @@ def plot_waveform(
     bottom.set_xlabel("t (ns)")
     bottom.set_ylabel("played - design")
     bottom.legend(fontsize=8)
+    return fig
+
+
+def plot_played(realized: RealizedWaveform, curves: Any, *, n: int = 4001) -> Figure:
+    """The figure of ``schedforge design --plot`` with a ``[waveform]`` section.
+
+    Parameters
+    ----------
+    realized : RealizedWaveform
+        From :func:`schedforge.waveform.realize`.
+    curves : DeviceCurves
+        A(s), B(s) of the device.
+    n : int
+        Plot points per panel.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Four panels: s(t) played against the design over the whole anneal; the
+        end of the anneal and the deviation (:func:`plot_waveform`); A(t) and
+        B(t) along the played waveform.
+    """
+    fig = Figure(figsize=(7.5, 11.0), layout="constrained")
+    axes = list(fig.subplots(4, 1))
+    sched, tf = realized.schedule, realized.tf_ns
+    t = np.union1d(np.linspace(0.0, tf, n), realized.t_ns)
+    played = sched.derivatives_t(t, 0)[0]
+    first = axes[0]
+    first.plot(t, sched.design(t / tf), color="C0", label="design")
+    first.plot(t, played, color="C3", lw=1, label=f"played ({realized.mode})")
+    first.set_xlabel("t (ns)")
+    first.set_ylabel("s(t)")
+    first.set_title(
+        f"{sched.design.family} schedule, tf = {tf:g} ns, as played by the device model",
+        fontsize=10,
+    )
+    first.legend(fontsize=8, loc="upper left")
+    plot_waveform(realized, ax=axes[1:3], n=n)
+    energies = curves.derivatives(np.clip(played, 0.0, 1.0), 0)
+    last = axes[3]
+    last.plot(t, energies[0, 0], color="C2", label="A(t)")
+    last.plot(t, energies[1, 0], color="C4", label="B(t)")
+    last.set_xlabel("t (ns)")
+    last.set_ylabel("E/h (GHz)")
+    last.set_title("device energies along the played waveform", fontsize=10)
+    last.legend(fontsize=8, loc="center left")
     return fig

@@ -1,0 +1,568 @@
+"""Which schedule degrades least under control errors: ensembles of noisy anneals.
+
+For every schedule and anneal time of a spec's ``[sweep]`` grid, an ensemble of
+noise draws (the ``[noise]`` section) is simulated through the sweep engine
+(:func:`schedforge.sweep.run_sweep` with a :class:`~schedforge.sweep.PointPlan`):
+resumable store, serial / processes / Dask executors, progress.  Each draw programs
+
+    h_i' = h_i + level M z_i,  J_ij' = J_ij + level M z_ij   (terms in ``noise.terms``)
+    A'(s) = (1 + amplitude_level z_A) A(s),  B'(s) = (1 + amplitude_level z_B) B(s)
+
+with M the largest |h_i|, |J_ij| and the z of draw d from
+``default_rng(SeedSequence([seed, d]))`` (:func:`schedforge.control_noise.draw_normals`:
+the same h, J errors as draw d of ``schedforge precision``), so a draw is the same
+whichever executor runs it.  The amplitude errors are constant in s (a miscalibrated
+gain); they need ``device.curves = "linear"``.
+
+Per point the store keeps the trace distance to the *noisy* problem's own final
+steady state and, in ``stats_json["noise"]``, the probability of the *intended*
+(noiseless) ground space of H(1) at the end.  The points of draw ``d`` are stored with
+``variant = "draw-<d>"``; the noiseless points (``variant = "nominal"``) are run too,
+for reference.  The store is keyed by the spec's physics and the noise model (level,
+terms, amplitude level, seed), not by the number of draws: asking for more draws
+later computes only the new ones.
+
+:func:`summarize_ensemble` gives per schedule and tf the mean, standard deviation and
+spread (std / mean) of both quantities, and per schedule and draw a scaling fit of
+the trace distance against tf (:func:`schedforge.analysis.fit_scaling`), to see
+whether the designed slope -(k_end + 1) survives the noise draw by draw.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import os
+import socket
+import time
+import traceback
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import __version__
+from .control_noise import draw_normals, noisy_problem
+from .errors import InputError
+from .problem_families import IsingProblem
+from .spec_model import NoiseSpec, Spec
+
+__all__ = [
+    "NOMINAL",
+    "DrawErrors",
+    "EnsemblePoint",
+    "NoiseSweepOutcome",
+    "check_draws",
+    "draw_errors",
+    "ensemble_points",
+    "intended_ground_probability",
+    "noise_physics_hash",
+    "noisy_spec",
+    "read_ensemble_rows",
+    "run_ensemble_point",
+    "run_noise_sweep",
+    "summarize_ensemble",
+]
+
+#: Draw index of the noiseless reference points.
+NOMINAL = -1
+
+
+# ---------------------------------------------------------------------------
+# draws
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class DrawErrors:
+    """The programmed problem and curve factors of one draw.
+
+    Attributes
+    ----------
+    draw : int
+    problem : IsingProblem
+        The programmed (noisy) problem.
+    factor_A, factor_B : float
+        A'(s) = factor_A A(s), B'(s) = factor_B B(s).
+    """
+
+    draw: int
+    problem: IsingProblem
+    factor_A: float
+    factor_B: float
+
+
+def _noise(spec: Spec) -> NoiseSpec:
+    if spec.noise is None:
+        raise InputError("noise", "is required: add a [noise] section (see schedforge init)")
+    return spec.noise
+
+
+def draw_errors(spec: Spec, draw: int) -> DrawErrors:
+    """The errors of draw ``draw`` (``NOMINAL``: none) of the spec's noise model."""
+    base = IsingProblem.from_spec(spec.problem)
+    if draw == NOMINAL:
+        return DrawErrors(draw, base, 1.0, 1.0)
+    noise = _noise(spec)
+    width = base.n + base.n_couplings
+    z_a, z_b = draw_normals(noise.seed, draw, width + 2)[width:]
+    amp = noise.amplitude_level
+    return DrawErrors(
+        draw,
+        noisy_problem(base, noise.level, noise.seed, draw, noise.terms),
+        1.0 + amp * float(z_a),
+        1.0 + amp * float(z_b),
+    )
+
+
+def noisy_spec(spec: Spec, draw: int) -> Spec:
+    """The spec of draw ``draw``: programmed problem and device curves with their errors.
+
+    Raises
+    ------
+    InputError
+        Amplitude errors on tabulated device curves (not supported), or a draw
+        whose amplitude factor is not positive.
+    """
+    err = draw_errors(spec, draw)
+    device = spec.device
+    if (err.factor_A, err.factor_B) != (1.0, 1.0):
+        if device.curves != "linear":
+            raise InputError(
+                "noise.amplitude_level",
+                'needs device.curves = "linear" (amplitude errors of tabulated curves are '
+                "not supported); set it to 0 for these curves",
+            )
+        if err.factor_A <= 0 or err.factor_B <= 0:
+            raise InputError(
+                "noise.amplitude_level",
+                f"gives draw {draw} a non-positive amplitude factor "
+                f"(A x {err.factor_A:.3g}, B x {err.factor_B:.3g}); lower it",
+            )
+        device = dataclasses.replace(
+            device, A0_ghz=device.A0_ghz * err.factor_A, B0_ghz=device.B0_ghz * err.factor_B
+        )
+    return dataclasses.replace(spec, problem=err.problem.to_spec(), device=device)
+
+
+# ---------------------------------------------------------------------------
+# points
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True, order=True)
+class EnsemblePoint:
+    """One anneal of the ensemble: a schedule, an anneal time and a draw (-1: nominal)."""
+
+    family: str
+    k_start: float
+    k_end: float
+    tf_ns: float
+    draw: int
+
+    @property
+    def variant(self) -> str:
+        """``"nominal"`` or ``"draw-<d>"`` (stored in the store's variant column)."""
+        return "nominal" if self.draw == NOMINAL else f"draw-{self.draw:05d}"
+
+    def canonical(self) -> str:
+        """Canonical JSON of the coordinates (floats as ``repr``), used in the key."""
+        return json.dumps(
+            {
+                "family": self.family,
+                "k_start": repr(float(self.k_start)),
+                "k_end": repr(float(self.k_end)),
+                "tf_ns": repr(float(self.tf_ns)),
+                "draw": int(self.draw),
+            },
+            sort_keys=True,
+        )
+
+    def label(self) -> str:
+        """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"``."""
+        k = "" if self.family == "linear" else f" k={self.k_start:g}/{self.k_end:g}"
+        d = "nominal" if self.draw == NOMINAL else f"draw {self.draw}"
+        return f"{self.family}{k} tf={self.tf_ns:g} ns {d}"
+
+
+def ensemble_points(spec: Spec) -> list[EnsemblePoint]:
+    """Every (schedule, tf) of the spec's grid x (nominal + ``noise.draws`` draws), sorted.
+
+    Only the designed (ideal) schedules: realized-waveform twins are not run.
+    """
+    from .sweep import sweep_points
+
+    noise = _noise(spec)
+    grid = [p for p in sweep_points(spec) if p.variant == "ideal"]
+    draws = [NOMINAL, *range(noise.draws)]
+    return sorted(
+        EnsemblePoint(p.family, p.k_start, p.k_end, p.tf_ns, d) for p in grid for d in draws
+    )
+
+
+def noise_physics_hash(spec: Spec) -> str:
+    """Store key: the spec's physics hash and the noise model (without the draw count)."""
+    noise = _noise(spec)
+    model = {
+        "level": noise.level,
+        "terms": list(noise.terms),
+        "amplitude_level": noise.amplitude_level,
+        "seed": noise.seed,
+    }
+    text = spec.physics_hash() + "\n" + json.dumps(model, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def intended_ground_probability(spec: Spec, rho: Any) -> float:
+    """tr(P_0 rho) with P_0 the ground space of the *noiseless* H(1) of ``spec``."""
+    from .dynamics import System
+
+    eig = System.from_spec(spec).eigen(1.0)
+    v0 = eig.vectors[:, eig.labels == 0]
+    return float(np.real(np.trace(v0.conj().T @ np.asarray(rho) @ v0)))
+
+
+def _json_default(obj: Any) -> Any:
+    item = getattr(obj, "item", None)
+    if callable(item):
+        return item()
+    if isinstance(obj, tuple | set | frozenset):
+        return list(obj)
+    return str(obj)
+
+
+def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
+    """Simulate one anneal of the ensemble; return its store row (picklable dict).
+
+    Like :func:`schedforge.sweep.run_point`: numerical failure comes back as
+    ``status = "failed"``, an unexpected exception as ``"error"``, bad input as
+    ``"input-error"`` (the sweep stops on it).  ``stats_json["noise"]`` holds the
+    draw, its amplitude factors and ``intended_ground_probability``.
+    """
+    from .dynamics import simulate_spec
+    from .sweep import INPUT_ERROR
+
+    row: dict[str, Any] = {
+        "family": point.family,
+        "variant": point.variant,
+        "k_start": float(point.k_start),
+        "k_end": float(point.k_end),
+        "tf_ns": float(point.tf_ns),
+        "schedforge_version": __version__,
+        "worker": f"{socket.gethostname()}:{os.getpid()}",
+    }
+    nan = math.nan
+    t0 = time.perf_counter()
+    try:
+        errs = draw_errors(spec, point.draw)
+        result = simulate_spec(
+            noisy_spec(spec, point.draw),
+            tf_ns=point.tf_ns,
+            k_end=point.k_end,
+            family=point.family,
+            k_start=point.k_start,
+        )
+        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s"):
+            row[name] = float(getattr(result, name))
+        row["status"] = str(result.status)
+        row["message"] = str(result.message or "")
+        row["integrator"] = str(result.integrator or "")
+        p_int = (
+            intended_ground_probability(spec, result.final_state)
+            if result.ok and result.final_state is not None
+            else nan
+        )
+        stats = dict(result.stats or {})
+        stats["noise"] = {
+            "draw": point.draw,
+            "factor_A": errs.factor_A,
+            "factor_B": errs.factor_B,
+            "intended_ground_probability": p_int,
+        }
+        row["stats_json"] = json.dumps(stats, sort_keys=True, default=_json_default)
+    except InputError as exc:
+        row.update(_failed(time.perf_counter() - t0, INPUT_ERROR, exc.rule))
+        row["input_field"] = exc.field
+    except Exception as exc:  # recorded as status "error": must not stop the sweep
+        tb = traceback.extract_tb(exc.__traceback__)
+        where = f" (at {tb[-1].filename}:{tb[-1].lineno})" if tb else ""
+        row.update(
+            _failed(time.perf_counter() - t0, "error", f"{type(exc).__name__}: {exc}{where}")
+        )
+    from .store import utc_now
+
+    row["computed_at"] = utc_now()
+    return row
+
+
+def _failed(wall_s: float, status: str, message: str) -> dict[str, Any]:
+    nan = math.nan
+    return {
+        "trace_distance": nan,
+        "ground_infidelity": nan,
+        "excess_energy_ghz": nan,
+        "integrator": "",
+        "stats_json": "{}",
+        "wall_s": wall_s,
+        "status": status,
+        "message": message,
+    }
+
+
+# ---------------------------------------------------------------------------
+# analysis
+# ---------------------------------------------------------------------------
+def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
+    """Flat ensemble rows from store rows: coordinates, draw, both quantities, status."""
+    out = []
+    for r in rows:
+        variant = str(r["variant"])
+        if variant == "nominal":
+            draw = NOMINAL
+        elif variant.startswith("draw-"):
+            draw = int(variant[5:])
+        else:
+            continue
+        stats = json.loads(r.get("stats_json") or "{}")
+        info = stats.get("noise", {})
+        ok = r["status"] == "ok"
+        p = info.get("intended_ground_probability", math.nan)
+        out.append(
+            {
+                "family": r["family"],
+                "k_start": float(r["k_start"]),
+                "k_end": float(r["k_end"]),
+                "tf_ns": float(r["tf_ns"]),
+                "draw": draw,
+                "trace_distance": float(r["trace_distance"]) if ok else math.nan,
+                "intended_ground_probability": float(p) if ok and p is not None else math.nan,
+                "factor_A": float(info.get("factor_A", math.nan)),
+                "factor_B": float(info.get("factor_B", math.nan)),
+                "status": r["status"],
+                "message": r.get("message", ""),
+            }
+        )
+    out.sort(key=lambda x: (x["family"], x["k_start"], x["k_end"], x["tf_ns"], x["draw"]))
+    return out
+
+
+def _moments(values: Sequence[float]) -> tuple[float, float, float]:
+    a = np.asarray(values, dtype=float)
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        return math.nan, math.nan, math.nan
+    mean = float(a.mean())
+    std = float(a.std(ddof=1)) if a.size > 1 else math.nan
+    spread = std / abs(mean) if mean != 0 and math.isfinite(std) else math.nan
+    return mean, std, spread
+
+
+def summarize_ensemble(
+    rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
+    """Distribution per (schedule, tf), and the error slope per (schedule, draw).
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        From :func:`read_ensemble_rows`.
+    atol : float
+        The integrator's ``atol`` (sets the numerical floor of the fits).
+
+    Returns
+    -------
+    per_point : list of dict
+        family, k_start, k_end, tf_ns, draws, ok, the nominal values, and the mean,
+        std and spread (std / mean) over the draws of the trace distance and of the
+        intended ground-state probability (only draws whose status is ok).
+    per_draw : list of dict
+        family, k_start, k_end, draw, slope, slope_stderr, expected_slope, verdict.
+    per_schedule : list of dict
+        The nominal fit and, over the draws: how many were fitted, how many agree
+        with the expected slope, and the mean and std of their slopes.
+    """
+    from .analysis import AGREES, fit_scaling, numerical_floor
+
+    groups: dict[tuple[str, float, float, float], list[Mapping[str, Any]]] = {}
+    for r in rows:
+        groups.setdefault((r["family"], r["k_start"], r["k_end"], r["tf_ns"]), []).append(r)
+    per_point = []
+    for (fam, k0, k1, tf), group in sorted(groups.items()):
+        draws = [r for r in group if r["draw"] != NOMINAL]
+        ok = [r for r in draws if r["status"] == "ok"]
+        nominal = [r for r in group if r["draw"] == NOMINAL]
+        td = _moments([r["trace_distance"] for r in ok])
+        pg = _moments([r["intended_ground_probability"] for r in ok])
+        per_point.append(
+            {
+                "family": fam,
+                "k_start": k0,
+                "k_end": k1,
+                "tf_ns": tf,
+                "draws": len(draws),
+                "ok": len(ok),
+                "nominal_trace_distance": nominal[0]["trace_distance"] if nominal else math.nan,
+                "trace_distance_mean": td[0],
+                "trace_distance_std": td[1],
+                "trace_distance_spread": td[2],
+                "nominal_intended_probability": nominal[0]["intended_ground_probability"]
+                if nominal
+                else math.nan,
+                "intended_probability_mean": pg[0],
+                "intended_probability_std": pg[1],
+                "intended_probability_spread": pg[2],
+            }
+        )
+    series: dict[tuple[str, float, float, int], list[Mapping[str, Any]]] = {}
+    for r in rows:
+        series.setdefault((r["family"], r["k_start"], r["k_end"], r["draw"]), []).append(r)
+    per_draw = []
+    floor = numerical_floor(atol)
+    for (fam, k0, k1, d), group in sorted(series.items()):
+        fit = fit_scaling(
+            [r["tf_ns"] for r in group],
+            [r["trace_distance"] for r in group],
+            k_end=k1,
+            status=[r["status"] for r in group],
+            family=fam,
+            variant="nominal" if d == NOMINAL else f"draw-{d:05d}",
+            k_start=k0,
+            floor=floor,
+            noise=atol,
+        )
+        per_draw.append(
+            {
+                "family": fam,
+                "k_start": k0,
+                "k_end": k1,
+                "draw": d,
+                "slope": fit.slope,
+                "slope_stderr": fit.slope_stderr,
+                "expected_slope": fit.expected_slope,
+                "verdict": fit.verdict,
+            }
+        )
+    per_schedule = []
+    keys = sorted({(r["family"], r["k_start"], r["k_end"]) for r in per_draw})
+    for fam, k0, k1 in keys:
+        mine = [r for r in per_draw if (r["family"], r["k_start"], r["k_end"]) == (fam, k0, k1)]
+        nominal = [r for r in mine if r["draw"] == NOMINAL]
+        draws = [r for r in mine if r["draw"] != NOMINAL]
+        slopes = [r["slope"] for r in draws if math.isfinite(r["slope"])]
+        mean, std, _ = _moments(slopes)
+        per_schedule.append(
+            {
+                "family": fam,
+                "k_start": k0,
+                "k_end": k1,
+                "expected_slope": mine[0]["expected_slope"],
+                "nominal_slope": nominal[0]["slope"] if nominal else math.nan,
+                "nominal_verdict": nominal[0]["verdict"] if nominal else "",
+                "draws": len(draws),
+                "fitted": len(slopes),
+                "agrees": sum(r["verdict"] == AGREES for r in draws),
+                "slope_mean": mean,
+                "slope_std": std,
+            }
+        )
+    return per_point, per_draw, per_schedule
+
+
+# ---------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class NoiseSweepOutcome:
+    """What :func:`run_noise_sweep` did.
+
+    Attributes
+    ----------
+    sweep : SweepOutcome
+        The engine's outcome (store, points.csv, failed and lost points).
+    rows : list of dict
+        :func:`read_ensemble_rows` of the stored points of this ensemble.
+    per_point, per_draw, per_schedule : list of dict
+        :func:`summarize_ensemble`.
+    files : dict of str to Path
+        The tables written: ``ensemble``, ``summary``, ``slopes``, ``schedules``.
+    """
+
+    sweep: Any
+    rows: list[dict[str, Any]]
+    per_point: list[dict[str, Any]]
+    per_draw: list[dict[str, Any]]
+    per_schedule: list[dict[str, Any]]
+    files: dict[str, Path]
+
+
+def check_draws(spec: Spec) -> None:
+    """Build every draw's spec once, so that bad input stops the run before it starts."""
+    noise = _noise(spec)
+    for d in range(noise.draws):
+        noisy_spec(spec, d)
+
+
+def run_noise_sweep(
+    spec: Spec,
+    out_dir: str | os.PathLike[str],
+    executor: Any = None,
+    progress: str = "auto",
+    fresh: bool = False,
+    *,
+    retry_failed: bool = False,
+    progress_stream: Any = None,
+) -> NoiseSweepOutcome:
+    """Run the ensemble of every (schedule, tf) through the sweep engine and tabulate it.
+
+    Parameters are those of :func:`schedforge.sweep.run_sweep`.  Writes, next to
+    ``DIR/sweep.sqlite`` and ``DIR/points.csv``, the tables ``ensemble.csv`` (one row
+    per anneal), ``ensemble-summary.csv`` (per schedule and tf), ``ensemble-slopes.csv``
+    (per schedule and draw) and ``ensemble-schedules.csv`` (per schedule).
+
+    Raises
+    ------
+    InputError
+        No ``[noise]`` section, amplitude errors on tabulated curves, a draw with a
+        non-positive amplitude factor, or the engine's own input errors.
+    """
+    import functools
+
+    from .control_noise import write_table_csv
+    from .sweep import PointPlan, run_sweep
+
+    check_draws(spec)
+    points = ensemble_points(spec)
+    physics = {**spec.physics_dict(), "noise": dataclasses.asdict(_noise(spec))}
+    plan = PointPlan(
+        points=points,
+        task=functools.partial(run_ensemble_point, spec),
+        physics_hash=noise_physics_hash(spec),
+        physics=physics,
+    )
+    outcome = run_sweep(
+        spec,
+        out_dir,
+        executor,
+        progress,
+        fresh,
+        retry_failed=retry_failed,
+        progress_stream=progress_stream,
+        plan=plan,
+    )
+    rows = read_ensemble_rows(outcome.rows)
+    per_point, per_draw, per_schedule = summarize_ensemble(rows, atol=spec.numerics.atol)
+    folder = Path(out_dir)
+    files = {
+        "ensemble": folder / "ensemble.csv",
+        "summary": folder / "ensemble-summary.csv",
+        "slopes": folder / "ensemble-slopes.csv",
+        "schedules": folder / "ensemble-schedules.csv",
+    }
+    for name, table in (
+        ("ensemble", rows),
+        ("summary", per_point),
+        ("slopes", per_draw),
+        ("schedules", per_schedule),
+    ):
+        write_table_csv(files[name], table)
+    return NoiseSweepOutcome(outcome, rows, per_point, per_draw, per_schedule, files)

@@ -1,0 +1,104 @@
+"""The README and the spec template say what the program does (issue 15).
+
+These checks keep the words next to the code: every command-line option is in the
+README's entry for its command, the qubit range of the template is the README's and the
+spec's, the template names every integrator, and every statistic ``simulate --json``
+prints is explained.  Facts of the project itself; no outside source.
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+from pathlib import Path
+
+import pytest
+
+from schedforge.cli import build_parser
+from schedforge.dynamics import INTEGRATORS, _load_builtin_integrators, simulate_spec
+from schedforge.spec import MAX_QUBITS, TEMPLATE, load_spec, parse_spec
+
+README = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+
+
+def _commands() -> dict[str, argparse.ArgumentParser]:
+    parser = build_parser()
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            return dict(action.choices)
+    raise AssertionError("no subcommands")
+
+
+def _readme_entry(command: str) -> str:
+    """The README's bullet for ``schedforge COMMAND``, up to the next bullet."""
+    match = re.search(rf"^- `schedforge {command}\b.*?(?=^- `schedforge |^\S)", README, re.M | re.S)
+    assert match, f"README has no entry for `schedforge {command}`"
+    return match.group(0)
+
+
+@pytest.mark.parametrize("command", sorted(_commands()))
+def test_readme_lists_every_option_of_every_command(command: str) -> None:
+    entry = _readme_entry(command)
+    for action in _commands()[command]._actions:
+        for option in action.option_strings:
+            if option in ("-h", "--help"):
+                continue
+            assert re.search(rf"{re.escape(option)}\b", entry), (
+                f"README's entry for `schedforge {command}` does not mention {option}"
+            )
+
+
+def test_readme_mentions_the_top_level_options() -> None:
+    assert "`--help`" in README and "`--version`" in README
+
+
+def test_qubit_range_is_the_same_in_template_readme_and_spec() -> None:
+    assert f"1 to {MAX_QUBITS} qubits" in TEMPLATE
+    assert f"1 to {MAX_QUBITS} qubits" in " ".join(README.split())
+    spec = parse_spec({"version": 1, "problem": {"qubits": MAX_QUBITS, "h": [0.1] * MAX_QUBITS}})
+    assert spec.problem.qubits == MAX_QUBITS
+
+
+def test_template_names_every_integrator_and_explains_the_families() -> None:
+    _load_builtin_integrators()
+    assert INTEGRATORS
+    for name in INTEGRATORS:
+        assert f'"{name}"' in TEMPLATE, name
+    for family in ("linear", "beta", "poly", "points", "gevrey"):
+        assert re.search(rf"^#\s+{family}\s+\S", TEMPLATE, re.M), family
+    assert "base" in TEMPLATE  # what poly reshapes
+
+
+def test_every_simulate_statistic_is_explained_in_the_readme() -> None:
+    section = README[README.index("### Statistics of `simulate --json`") :]
+    section = section[: section.index("\n## ")]
+    runs = [
+        (load_spec("builtin:driven-qubit"), {"tf_ns": 100.0}),  # eigenframe
+        (load_spec("builtin:ising-2q"), {"tf_ns": 100.0}),  # eigenframe, clustered steps
+        (
+            parse_spec({"version": 1, "numerics": {"integrator": "general"}}),
+            {"tf_ns": 10.0},
+        ),
+        (
+            parse_spec(
+                {
+                    "version": 1,
+                    "bath": {"spectrum": "none"},
+                    "initial": {"state": "ground"},
+                }
+            ),
+            {"tf_ns": 10.0},
+        ),
+        (
+            parse_spec(
+                {"version": 1, "schedule": {"tf_ns": 50.0}, "waveform": {"sample_rate_gsps": 0.5}}
+            ),
+            {"variant": "realized"},
+        ),  # held
+    ]
+    for spec, kwargs in runs:
+        result = simulate_spec(spec, **kwargs)
+        assert result.ok, result.message
+        for key in result.stats:
+            documented = re.sub(r"^rejected_\w+$", "rejected_<reason>", key)
+            assert f"`{documented}`" in section, f"{result.integrator}: stats[{key!r}]"

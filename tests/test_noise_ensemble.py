@@ -1,0 +1,212 @@
+"""Noise ensembles of anneals through the sweep engine (issue 17, part 2).
+
+References
+----------
+- A draw of the ensemble is rebuilt here by hand from numpy's SeedSequence (the
+  documented layout: fields, couplings, then A and B amplitudes) and run alone
+  through ``simulate_spec``; the ensemble must give the same numbers.
+- One qubit with linear curves: A(1) = 0, so H(1) = (B(1)/2) h Z and the intended
+  ground state of h > 0 is |1> (Z = -1); its probability is rho_11 (common practice,
+  no source).
+- Sample mean and standard deviation (ddof = 1) against numpy; a pure power law
+  C tf^-(k+1) must be fitted with the slope -(k+1) (Avron, Fraas, Graf and Grech 2012,
+  as in the README; the law here is exact by construction).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from schedforge.dynamics import simulate_spec
+from schedforge.errors import InputError
+from schedforge.noise_ensemble import (
+    NOMINAL,
+    ensemble_points,
+    noise_physics_hash,
+    noisy_spec,
+    run_noise_sweep,
+    summarize_ensemble,
+)
+from schedforge.spec import parse_spec
+
+BASE = {
+    "version": 1,
+    "device": {"curves": "linear", "A0_ghz": 3.5, "B0_ghz": 2.5},
+    "problem": {"qubits": 1, "h": [0.7]},
+    "bath": {"eta": 2e-2},
+    "schedule": {"family": "beta", "k_start": 0, "k_end": 1, "tf_ns": 100.0},
+    "sweep": {"tf_ns": [60.0, 120.0]},
+    "noise": {"level": 0.1, "amplitude_level": 0.05, "draws": 3, "seed": 9},
+}
+
+
+def make_spec(**noise: object) -> object:
+    data = json.loads(json.dumps(BASE))
+    data["noise"].update(noise)
+    return parse_spec(data)
+
+
+def by_point(rows: list[dict]) -> dict[tuple[float, int], dict]:
+    return {(r["tf_ns"], r["draw"]): r for r in rows}
+
+
+def test_points_cover_grid_and_draws() -> None:
+    pts = ensemble_points(make_spec())
+    assert len(pts) == 2 * (3 + 1)
+    assert {p.draw for p in pts} == {NOMINAL, 0, 1, 2}
+    assert len({p.canonical() for p in pts}) == len(pts)
+
+
+def test_level_zero_reproduces_the_noiseless_results(tmp_path: Path) -> None:
+    spec = make_spec(level=0.0, amplitude_level=0.0)
+    for d in range(3):
+        assert noisy_spec(spec, d).physics_hash() == spec.physics_hash()
+    out = run_noise_sweep(spec, tmp_path / "zero", "serial", progress="quiet")
+    rows = by_point(out.rows)
+    for tf in (60.0, 120.0):
+        alone = simulate_spec(spec, tf_ns=tf)
+        for d in (NOMINAL, 0, 1, 2):
+            assert rows[(tf, d)]["trace_distance"] == alone.trace_distance
+    for r in out.per_point:
+        assert r["trace_distance_std"] == 0.0
+
+
+def test_a_draw_equals_the_same_noisy_problem_run_alone(tmp_path: Path) -> None:
+    spec = make_spec()
+    out = run_noise_sweep(spec, tmp_path / "ens", "serial", progress="quiet")
+    rows = by_point(out.rows)
+    draw, tf = 2, 120.0
+    z = np.random.default_rng(np.random.SeedSequence([9, draw])).standard_normal(3)
+    h = 0.7 + 0.1 * 0.7 * z[0]  # level x largest |coefficient| x z
+    by_hand = dataclasses.replace(
+        spec,
+        problem=dataclasses.replace(spec.problem, h=(h,)),
+        device=dataclasses.replace(
+            spec.device, A0_ghz=3.5 * (1 + 0.05 * z[1]), B0_ghz=2.5 * (1 + 0.05 * z[2])
+        ),
+    )
+    alone = simulate_spec(by_hand, tf_ns=tf)
+    row = rows[(tf, draw)]
+    assert row["status"] == "ok"
+    assert row["trace_distance"] == pytest.approx(alone.trace_distance, rel=1e-12, abs=1e-16)
+    assert row["factor_A"] == pytest.approx(1 + 0.05 * z[1], rel=1e-15)
+    p_intended = float(np.real(alone.final_state[1, 1]))  # |1> is the ground state of h > 0
+    assert row["intended_ground_probability"] == pytest.approx(p_intended, abs=1e-12)
+    # the errors matter: the draw differs from the nominal point
+    assert row["trace_distance"] != rows[(tf, NOMINAL)]["trace_distance"]
+
+
+def test_summary_moments_match_numpy(tmp_path: Path) -> None:
+    out = run_noise_sweep(make_spec(), tmp_path / "m", "serial", progress="quiet")
+    for summary in out.per_point:
+        vals = [
+            r["trace_distance"]
+            for r in out.rows
+            if r["tf_ns"] == summary["tf_ns"] and r["draw"] != NOMINAL
+        ]
+        assert summary["trace_distance_mean"] == pytest.approx(np.mean(vals), rel=1e-12)
+        assert summary["trace_distance_std"] == pytest.approx(np.std(vals, ddof=1), rel=1e-12)
+        assert summary["trace_distance_spread"] == pytest.approx(
+            np.std(vals, ddof=1) / np.mean(vals), rel=1e-12
+        )
+
+
+def test_per_draw_fit_recovers_an_exact_power_law() -> None:
+    tf = np.geomspace(100, 10000, 6)
+    rows = []
+    for d, c in ((NOMINAL, 1.0), (0, 2.0), (1, 0.5)):
+        for t in tf:
+            rows.append(
+                {"family": "beta", "k_start": 0.0, "k_end": 2.0, "tf_ns": float(t), "draw": d,
+                 "trace_distance": c * 1e3 * t**-3.0, "intended_ground_probability": 0.9,
+                 "status": "ok"}
+            )  # fmt: skip
+    _, per_draw, per_schedule = summarize_ensemble(rows)
+    assert all(r["slope"] == pytest.approx(-3.0, abs=1e-9) for r in per_draw)
+    assert per_schedule[0]["agrees"] == 2 and per_schedule[0]["nominal_verdict"] == "agrees"
+
+
+def test_resume_and_more_draws_compute_only_what_is_missing(tmp_path: Path) -> None:
+    spec = make_spec(draws=2)
+    folder = tmp_path / "r"
+    first = run_noise_sweep(spec, folder, "serial", progress="quiet")
+    assert first.sweep.n_computed == 2 * 3
+    again = run_noise_sweep(spec, folder, "serial", progress="quiet")
+    assert again.sweep.n_computed == 0
+    more = run_noise_sweep(make_spec(draws=3), folder, "serial", progress="quiet")
+    assert more.sweep.n_computed == 2  # only draw 2, at both tf
+    assert noise_physics_hash(make_spec(draws=2)) == noise_physics_hash(make_spec(draws=3))
+    assert noise_physics_hash(make_spec(seed=1)) != noise_physics_hash(spec)
+    with pytest.raises(InputError) as err:  # another noise model in the same folder
+        run_noise_sweep(make_spec(draws=2, level=0.2), folder, "serial", progress="quiet")
+    assert err.value.field == "--out"
+
+
+def test_draws_are_the_same_on_serial_and_processes(tmp_path: Path) -> None:
+    spec = make_spec(draws=2)
+    a = run_noise_sweep(spec, tmp_path / "a", "serial", progress="quiet")
+    from schedforge.executors import make_executor
+
+    with make_executor("processes", 2) as ex:
+        b = run_noise_sweep(spec, tmp_path / "b", ex, progress="quiet")
+    keep = ("tf_ns", "draw", "trace_distance", "intended_ground_probability", "status")
+    assert [{k: r[k] for k in keep} for r in a.rows] == [{k: r[k] for k in keep} for r in b.rows]
+
+
+def test_bad_noise_input() -> None:
+    data = json.loads(json.dumps(BASE))
+    del data["noise"]
+    with pytest.raises(InputError) as err:
+        ensemble_points(parse_spec(data))
+    assert err.value.field == "noise"
+    tab = dataclasses.replace(
+        make_spec(), device=dataclasses.replace(make_spec().device, curves="/nowhere.csv")
+    )
+    with pytest.raises(InputError) as err:
+        noisy_spec(tab, 0)
+    assert err.value.field == "noise.amplitude_level"
+    big = make_spec(amplitude_level=0.9, draws=200)
+    with pytest.raises(InputError) as err:  # some draw has 1 + 0.9 z <= 0
+        from schedforge.noise_ensemble import check_draws
+
+        check_draws(big)
+    assert "non-positive amplitude" in err.value.rule
+
+
+def test_cli_noise_sweep_errors_exit_2(run_cli, write_spec, tmp_path: Path) -> None:
+    spec = write_spec("version = 1\n[sweep]\ntf_ns = [100.0]\n")
+    out = tmp_path / "o"
+    code, _, err = run_cli("noise-sweep", spec, "--out", out, "--executor", "serial")
+    assert code == 2 and "`noise`" in err
+    assert not out.exists()
+
+
+def test_console_script_noise_sweep(tmp_path: Path, write_spec) -> None:
+    text = (
+        "version = 1\n[problem]\nqubits = 1\nh = [0.7]\n[bath]\neta = 2e-2\n"
+        "[schedule]\nk_end = 1\n[sweep]\ntf_ns = [60.0, 120.0]\n"
+        "[noise]\nlevel = 0.1\ndraws = 2\nseed = 1\n"
+    )
+    spec = write_spec(text)
+    script = Path(sys.executable).with_name("schedforge")
+    cmd = [str(script)] if script.exists() else [sys.executable, "-m", "schedforge"]
+    proc = subprocess.run(
+        [*cmd, "noise-sweep", str(spec), "--out", "res", "--executor", "serial", "--quiet"],
+        cwd=tmp_path, capture_output=True, text=True, timeout=300, stdin=subprocess.DEVNULL,
+    )  # fmt: skip
+    assert proc.returncode == 0, proc.stderr
+    res = tmp_path / "res"
+    for name in ("ensemble.csv", "ensemble-summary.csv", "ensemble-slopes.csv",
+                 "ensemble-schedules.csv", "noise-report.html", "points.csv"):  # fmt: skip
+        assert (res / name).is_file(), name
+    html = (res / "noise-report.html").read_text(encoding="utf-8")
+    assert "which schedule degrades least" in html and html.count("<img") >= 4
+    assert not math.isnan(float((res / "ensemble.csv").read_text().splitlines()[1].split(",")[5]))
