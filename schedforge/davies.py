@@ -54,6 +54,7 @@ from .bath import Bath
 
 __all__ = [
     "DEFAULT_DEGENERACY_RTOL",
+    "SECULAR_RTOL",
     "DaviesGenerator",
     "EigenDecomposition",
     "GeneratorSpectrum",
@@ -65,6 +66,12 @@ __all__ = [
 
 #: Levels (and Bohr frequencies) closer than this times max(1, max|E|) are merged.
 DEFAULT_DEGENERACY_RTOL: float = 1e-9
+#: Default grouping of a simulated system (``numerics.secular_tol_ghz`` unset): Bohr
+#: frequencies and levels closer than this times max(1, |H|) form one sector.  In double
+#: precision ``eigh`` resolves eigenvectors of levels that close only to about
+#: eps |H| / gap ~ 1e-9, so closer levels cannot be told apart reliably; grouping them
+#: also makes the result independent of where inside that band a splitting falls.
+SECULAR_RTOL: float = 1e-7
 
 
 @dataclass(frozen=True, eq=False)

@@ -40,7 +40,13 @@ from numpy.typing import NDArray
 from threadpoolctl import threadpool_limits
 
 from .bath import Bath, make_bath, steady_state_advice
-from .davies import DaviesGenerator, EigenDecomposition, GeneratorSpectrum, eigen_decomposition
+from .davies import (
+    SECULAR_RTOL,
+    DaviesGenerator,
+    EigenDecomposition,
+    GeneratorSpectrum,
+    eigen_decomposition,
+)
 from .device import make_device_curves
 from .error_law import relaxation_warning
 from .errors import InputError, SteadyStateError
@@ -98,8 +104,9 @@ class System:
         Inverse temperature (ns/rad) of the initial Gibbs state; defaults to
         the bath's.  Needed for a closed system that starts in a Gibbs state.
     degeneracy_tol : float, optional
-        Absolute tolerance (rad/ns) for grouping levels and Bohr frequencies;
-        default ``1e-9 max(1, |H|)``.
+        Absolute tolerance (rad/ns) for grouping levels and Bohr frequencies into the
+        sectors of the Davies generator (``numerics.secular_tol_ghz``); default
+        ``davies.SECULAR_RTOL * max(1, |H|)``.
     """
 
     def __init__(
@@ -130,7 +137,7 @@ class System:
         self.initial = initial
         self.beta = beta
         if degeneracy_tol is None:
-            degeneracy_tol = 1e-9 * max(1.0, hamiltonian.scale())
+            degeneracy_tol = SECULAR_RTOL * max(1.0, hamiltonian.scale())
         self.degeneracy_tol = float(degeneracy_tol)
         self._preflight: list[str] | None = None
         self._diagnostics: dict[str, Any] = {}
@@ -139,7 +146,13 @@ class System:
     @classmethod
     def from_spec(cls, spec: Any) -> System:
         """Build the system of a :class:`~schedforge.spec_model.Spec`."""
-        parts = (spec.device, spec.problem, spec.bath, spec.initial)
+        parts = (
+            spec.device,
+            spec.problem,
+            spec.bath,
+            spec.initial,
+            getattr(spec.numerics, "secular_tol_ghz", None),
+        )
         try:
             return _cached_system(*parts)
         except TypeError:  # unhashable parts (lists instead of tuples): build without the cache
@@ -310,10 +323,17 @@ class System:
         return warnings
 
     def _bohr_near_crossing(self, grid: NDArray[np.float64]) -> str | None:
-        worst: tuple[float, float, float] | None = None  # (ratio, s, separation)
+        """Every stretch of s where distinct Bohr frequencies come within 10 rates.
+
+        Frequencies closer than the grouping tolerance form one sector (the secular
+        approximation keeps their coupling); distinct ones closer than 10 times the
+        largest relaxation rate are where the approximation is doubtful.  The grid
+        points where that happens are merged into intervals, each named.
+        """
+        assert self.bath is not None
+        found: list[tuple[float, float, float]] = []  # (s, separation, ratio)
         for s in grid:
             gen = self.davies(float(s))
-            assert self.bath is not None
             weights = sum(np.abs(gen.eig.to_eigen(a)) ** 2 for a in self.bath.operators)
             coupled = (weights > 1e-20) & (gen.omega != 0.0)
             freqs = np.unique(gen.omega[coupled])
@@ -326,16 +346,30 @@ class System:
             sep = float(np.min(np.diff(np.sort(reps))))
             rate = float(np.max(gen.gamma * weights))
             ratio = sep / rate if rate > 0 else np.inf
-            if worst is None or ratio < worst[0]:
-                worst = (ratio, float(s), sep)
-        if worst is not None and worst[0] < 10.0:
-            return (
-                f"Bohr frequencies come within {worst[2] / GHZ_TO_RAD_PER_NS:.3g} GHz of each "
-                f"other near s = {worst[1]:.3f}, less than 10 times the largest relaxation "
-                "rate: the secular "
-                "(Davies) approximation is doubtful there"
-            )
-        return None
+            if ratio < 10.0:
+                found.append((float(s), sep, ratio))
+        if not found:
+            return None
+        step = float(grid[1] - grid[0]) if grid.size > 1 else 1.0
+        intervals: list[list[float]] = []
+        for s, sep, _ in found:
+            if intervals and s - intervals[-1][1] <= 1.5 * step:
+                intervals[-1][1] = s
+                intervals[-1][2] = min(intervals[-1][2], sep)
+            else:
+                intervals.append([s, s, sep])
+        names = ", ".join(
+            f"s = {a:.3f}" if a == b else f"s = {a:.3f} to {b:.3f}" for a, b, _ in intervals
+        )
+        closest = min(sep for _, _, sep in intervals)
+        self._diagnostics["secular_doubtful_intervals"] = [(a, b) for a, b, _ in intervals]
+        return (
+            f"distinct Bohr frequencies come closer than 10 times the largest relaxation rate "
+            f"(down to {closest / GHZ_TO_RAD_PER_NS:.3g} GHz apart; grouping tolerance "
+            f"{self.degeneracy_tol / GHZ_TO_RAD_PER_NS:.3g} GHz, numerics.secular_tol_ghz) "
+            f"at {names} (scanned on {grid.size} points): the secular (Davies) approximation "
+            "is doubtful there"
+        )
 
     def __repr__(self) -> str:
         kind = "closed" if self.closed else "open"
@@ -389,7 +423,9 @@ def _check_density_matrix(rho: NDArray[Any], dim: int) -> NDArray[np.complex128]
     return 0.5 * (rho + rho.conj().T)
 
 
-def _system_from_parts(device: Any, problem: Any, bath_spec: Any, initial: Any) -> System:
+def _system_from_parts(
+    device: Any, problem: Any, bath_spec: Any, initial: Any, secular_tol_ghz: float | None = None
+) -> System:
     curves = make_device_curves(device)
     ham = AnnealingHamiltonian(curves, problem)
     bath = make_bath(bath_spec, ham.n_qubits)
@@ -397,7 +433,10 @@ def _system_from_parts(device: Any, problem: Any, bath_spec: Any, initial: Any) 
         raise InputError(
             "bath.temperature_mk", f"must be a finite number > 0, got {bath_spec.temperature_mk!r}"
         )
-    return System(ham, bath, initial.state, beta=beta_from_mk(bath_spec.temperature_mk))
+    tol = None if secular_tol_ghz is None else secular_tol_ghz * GHZ_TO_RAD_PER_NS
+    return System(
+        ham, bath, initial.state, beta=beta_from_mk(bath_spec.temperature_mk), degeneracy_tol=tol
+    )
 
 
 #: Systems built from the same spec parts are shared (their pre-flight runs once).

@@ -465,6 +465,7 @@ def _numerics(data: dict[str, Any]) -> NumericsSpec:
             "integrator": _integrator_name,
             "rtol": lambda v, p: _number(v, p, gt=0, lt=1),
             "atol": lambda v, p: _number(v, p, gt=0, lt=1),
+            "secular_tol_ghz": lambda v, p: _number(v, p, gt=0, lt=1),
         },
     )
     return NumericsSpec(**kw)
@@ -839,6 +840,12 @@ state = "gibbs"          # "gibbs" (thermal state of H(0)) or "ground"
 integrator = "auto"
 rtol = 1e-10
 atol = 1e-14
+# secular_tol_ghz: Bohr frequencies (and levels) closer than this (E/h, GHz) count as
+#   equal in the Davies generator, whose secular approximation then couples them.
+#   Default: 1e-7 of the largest |energy| of H(s) (the resolution of eigenvectors in
+#   double precision).  Pre-flight names every stretch of s where distinct frequencies
+#   come closer than 10 times the relaxation rates (the approximation is doubtful there).
+# secular_tol_ghz = 1e-6
 
 # A sweep runs every combination of family x k_end x tf_ns.
 # [sweep]

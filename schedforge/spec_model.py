@@ -122,6 +122,9 @@ class NumericsSpec:
     integrator: str = "auto"
     rtol: float = 1e-10
     atol: float = 1e-14
+    #: Bohr frequencies (and levels) closer than this (GHz) form one sector of the Davies
+    #: generator; None: ``davies.SECULAR_RTOL`` times the Hamiltonian's scale.
+    secular_tol_ghz: float | None = None
 
 
 @dataclass(frozen=True)
@@ -219,6 +222,9 @@ class Spec:
         del device["curves_sha256"]  # absent before content hashing: old hashes unchanged
         if self.device.curves != "linear":  # what the file holds, not where it lies
             device["curves"] = f"sha256:{self.device.curves_digest()}"
+        numerics = asdict(self.numerics)
+        if numerics["secular_tol_ghz"] is None:  # absent before it existed: hashes unchanged
+            del numerics["secular_tol_ghz"]
         return {
             "version": self.version,
             "device": device,
@@ -226,7 +232,7 @@ class Spec:
             "bath": asdict(self.bath),
             "schedule_shape": {"tail": sched.tail, "points": sched.points},
             "initial": asdict(self.initial),
-            "numerics": asdict(self.numerics),
+            "numerics": numerics,
             "waveform": None if self.waveform is None else asdict(self.waveform),
         }
 
