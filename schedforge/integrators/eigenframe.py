@@ -70,14 +70,26 @@ leaves out is bounded with the Landau-Zener formula and the mixing angles at the
 step's ends (``_diabatic_passage``); when the bound exceeds ``FREE_MODE_RTOL`` of the
 result the point is handed over or carries a warning, as for the free modes.
 
-Where Bohr frequencies coincide, the Davies generator couples the coherences that
-share them and this integrator does not; ``secular_coupling_bound`` bounds what that
-leaves out through the populations (many-qubit spectra have such coincidences among
-nearly empty excited levels, where the bound is negligible).
+Bohr-frequency sectors.  On sparse or symmetric problems (chains, rings, stars,
+uniform couplings) Bohr frequencies coincide and levels are degenerate over whole
+stretches of the anneal, and the Davies generator couples every element of rho with
+the others of its sector (equal Bohr frequency; the zero sector holds the populations
+and the coherences inside degenerate levels).  Where that happens the step adds those
+couplings (:func:`.sectors.sector_coupling`, the generator minus the diagonal rates and
+the Pauli matrix) to the frame rotation in its collocation system, and free modes that
+a sector (or the frame's rotation inside degenerate levels) couples without oscillation
+are propagated together (:func:`.sectors.propagate_sector_modes`).  Levels that stay
+degenerate get a transported frame inside their eigenspace (``_transported``: the basis
+closest to the previous one) whose rotation there is known exactly
+(``_transport_rotation``); where degenerate levels split along a step, the basis they
+split into is chosen at the step's start and the state re-expressed in it
+(``_opening_levels``, exact: a change of basis inside a degenerate eigenspace).  Which
+frequencies count as equal is ``numerics.secular_tol_ghz`` (``System.degeneracy_tol``),
+the same for both integrators.
 
-Where the assumptions fail (degenerate levels, coinciding Bohr frequencies whose
-coupling matters, a Lamb shift, a closed system), the integrator hands over to the
-general one and says so in the outcome's ``stats["fallback"]``.
+Where the assumptions fail (a Lamb shift, a custom initial state, a closed system), the
+integrator hands over to the general one and says so in the outcome's
+``stats["fallback"]``.
 
 The collocation nodes and matrices live in :mod:`.collocation`, the treatment of
 the free modes (ratios, clusters, rates, dressing) in :mod:`.free_modes`; this
