@@ -229,18 +229,28 @@ def _degenerate_clusters(E: NDArray[np.float64], tol: float) -> list[tuple[int, 
 
 
 def _opening_levels(
-    E_start: NDArray[np.float64], E_end: NDArray[np.float64]
+    E_start: NDArray[np.float64],
+    E_end: NDArray[np.float64],
+    V_start: NDArray[np.float64],
+    dH_start: NDArray[np.float64],
 ) -> NDArray[np.intp] | None:
     """Labels of degenerate levels at the step's start that are split at its end.
 
     Their basis inside the eigenspace was chosen by transport and need not be the one
-    the levels split into; None when no degenerate group splits over the step.
+    the levels split into.  Only groups that dH/ds does not split at first order count:
+    where it does, the frame already holds its eigenvectors there (the limit of the
+    eigenbasis, ``_adapt_degenerate``).  None when no such group splits over the step.
     """
     tol = _degeneracy_tol(E_start[None])
-    groups = _degenerate_clusters(E_start[None], tol)
-    opening = [
-        members for _, members in groups if np.ptp(E_end[members]) > _degeneracy_tol(E_end[None])
-    ]
+    opening = []
+    for _, members in _degenerate_clusters(E_start[None], tol):
+        if np.ptp(E_end[members]) <= _degeneracy_tol(E_end[None]):
+            continue
+        block = V_start[:, members]
+        first = np.linalg.eigvalsh(block.T @ dH_start @ block)
+        if np.min(np.diff(first)) > DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(first)))):
+            continue
+        opening.append(members)
     return np.concatenate(opening) if opening else None
 
 
@@ -1434,7 +1444,10 @@ def integrate_eigenframe(
             if passed is not None:
                 passage, fr, adiabatic = passed
                 stats["frame_evals"] += xs.size
-        opening = _opening_levels(last_frame.E[-1], fr.E[-1]) if rebased_at != x else None
+        opening = None
+        if rebased_at != x:
+            dH_start = model.hamiltonian_batch(np.array([last_fd[0][-1]]))[1][0]
+            opening = _opening_levels(last_frame.E[-1], fr.E[-1], Vref, dH_start)
         if opening is not None and passage is None:
             # degenerate levels split along this step: choose, inside their eigenspace,
             # the basis they split into, and re-express the state in it (a change of
