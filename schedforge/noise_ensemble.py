@@ -240,7 +240,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
     draw, its amplitude factors and ``intended_ground_probability``.
     """
     from .dynamics import simulate_spec
-    from .sweep import INPUT_ERROR
+    from .sweep import INPUT_ERROR, result_columns
 
     row: dict[str, Any] = {
         "family": point.family,
@@ -262,11 +262,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
             family=point.family,
             k_start=point.k_start,
         )
-        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s"):
-            row[name] = float(getattr(result, name))
-        row["status"] = str(result.status)
-        row["message"] = str(result.message or "")
-        row["integrator"] = str(result.integrator or "")
+        row.update(result_columns(result))
         p_int = (
             intended_ground_probability(spec, result.final_state)
             if result.ok and result.final_state is not None

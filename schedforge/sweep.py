@@ -73,6 +73,7 @@ __all__ = [
     "format_summary",
     "load_sweep_spec",
     "point_key",
+    "result_columns",
     "run_point",
     "run_sweep",
     "sweep_points",
@@ -203,6 +204,22 @@ def _played_note(pending: Sequence[SweepPoint]) -> str:
     )
 
 
+def result_columns(result: Any) -> dict[str, Any]:
+    """The store's columns that a :class:`~schedforge.dynamics.SimulationResult` fills.
+
+    Metrics, status, message and the integrator that ran; shared by the sweep and the
+    noise ensembles so both store a point the same way.
+    """
+    row: dict[str, Any] = {
+        name: float(getattr(result, name))
+        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s")
+    }
+    row["status"] = str(result.status)
+    row["message"] = str(result.message or "")
+    row["integrator"] = str(result.integrator or "")
+    return row
+
+
 def run_point(
     spec: Spec, point: SweepPoint, *, common_warnings: Sequence[str] = ()
 ) -> dict[str, Any]:
@@ -255,11 +272,7 @@ def run_point(
             k_start=point.k_start,
             variant=point.variant,
         )
-        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s"):
-            row[name] = float(getattr(result, name))
-        row["status"] = str(result.status)
-        row["message"] = str(result.message or "")
-        row["integrator"] = str(result.integrator or "")
+        row.update(result_columns(result))
         own = [w for w in result.warnings if w not in set(common_warnings)]
         stats = dict(result.stats or {})
         if own:
