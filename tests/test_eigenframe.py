@@ -369,6 +369,26 @@ def test_narrow_crossing_matches_general(j: float, passed: bool) -> None:
     assert 2 * math.pi * res.stats["crossing_gap_ghz"] == pytest.approx(true_gap, rel=0.1)
 
 
+@pytest.mark.slow
+def test_crossing_bound_of_the_order_of_the_result_leaves_no_number(monkeypatch) -> None:
+    # where the general integrator is out of reach, a Landau-Zener bound that matters
+    # gives a warning, and one comparable to the result itself (above CROSSING_TRUST of
+    # it) fails the point: no number that cannot be stood behind.  The thresholds are
+    # placed around this point's own bound / result ratio (measured in the first run).
+    system = _crossing_system(3e-4)
+    f = make_schedule("beta", k_end=2)
+    monkeypatch.setattr(ef, "FREE_MODE_RTOL", 0.0)  # every bound "matters"
+    monkeypatch.setattr(ef, "FALLBACK_PHASE_LIMIT", 0.0)  # no handover
+    first = simulate(system, f, 100.0, integrator="eigenframe")
+    ratio = first.stats["crossing_error_estimate"] / first.trace_distance
+    assert first.ok and any("Landau-Zener" in w for w in first.warnings)
+    monkeypatch.setattr(ef, "CROSSING_TRUST", 0.5 * ratio)
+    failed = simulate(system, f, 100.0, integrator="eigenframe")
+    assert failed.status == "failed"
+    assert "Landau-Zener" in failed.message and "not known" in failed.message
+    assert math.isnan(failed.trace_distance)
+
+
 # -- Bohr-frequency sectors: sparse and symmetric problems ------------------------------
 SECTOR_BATH = {"eta": 2e-2, "temperature_mk": 12.0}
 # problems of the kind users write first (invented round numbers): degenerate levels
