@@ -1588,6 +1588,8 @@ def integrate_eigenframe(
                     scheme.w,
                 )
                 A_single = np.where(in_sector, A_sec, A_single)
+                if in_sector.any():
+                    stats["sector_free_modes"] = stats.get("sector_free_modes", 0) + 1
                 undressed += _sector_leak(sector, A_start, free, tf, h, scheme.w)
             A_new = A_single
             # a-posteriori estimate of what the treatment of the free modes leaves out:
@@ -1805,11 +1807,7 @@ def eigenframe_integrator(
                 out["stats"]["free_mode_error_estimate"], second
             )
             out["stats"]["dressing_effect"] = effect
-    sector_free_modes = (
-        out["status"] == "ok"
-        and out["stats"].get("sector_steps", 0) > 0
-        and out["stats"].get("exponential_steps", 0) > 0
-    )
+    sector_free_modes = out["status"] == "ok" and out["stats"].get("sector_free_modes", 0) > 0
     if (_needs_resolving(out) or sector_free_modes) and phase <= RESOLVED_PHASE_LIMIT:
         # short anneals: resolve the oscillations instead, while that stays cheap.  Free
         # modes inside Bohr sectors are not dressed by their sector couplings, and on
