@@ -661,7 +661,8 @@ def fit_scaling(
         if math.isfinite(tau)
         else "; tf not checked against 1/gap (unknown)"
     )
-    if not law.polynomial:
+
+    def disagrees(message: str) -> ScalingFit:
         return ScalingFit(
             regime=tuple(regime),
             slope=slope,
@@ -669,11 +670,14 @@ def fit_scaling(
             intercept=intercept,
             coefficient_fit=nan,
             verdict=DISAGREES,
-            message=(
-                f"slope {slope:.3f} +- {stderr:.2g} over {span}: a power law, where this "
-                "family should decay faster than any power"
-            ),
+            message=message,
             **common,
+        )
+
+    if not law.polynomial:
+        return disagrees(
+            f"slope {slope:.3f} +- {stderr:.2g} over {span}: a power law, where this "
+            "family should decay faster than any power"
         )
     if abs(slope - expected) > slope_tol:
         if _drifting_toward(local_slopes(tf[regime], err[regime]), expected):
@@ -682,18 +686,9 @@ def fit_scaling(
                 f"local slopes still drift toward {expected:.3g} over {span} (fit there: "
                 f"{slope:.3f}); add tf above {_fmt_tf(tf[regime[-1]])} ns"
             )
-        return ScalingFit(
-            regime=tuple(regime),
-            slope=slope,
-            slope_stderr=stderr,
-            intercept=intercept,
-            coefficient_fit=nan,
-            verdict=DISAGREES,
-            message=(
-                f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.3g} "
-                f"+- {slope_tol} ({law.formula})"
-            ),
-            **common,
+        return disagrees(
+            f"slope {slope:.3f} +- {stderr:.2g} over {span}; expected {expected:.3g} "
+            f"+- {slope_tol} ({law.formula})"
         )
     coeff = _extrapolated_coefficient(tf[regime], err[regime], law.order)
     pred = float(coefficient_predicted)

@@ -292,17 +292,9 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
 
 
 def _failed(wall_s: float, status: str, message: str) -> dict[str, Any]:
-    nan = math.nan
-    return {
-        "trace_distance": nan,
-        "ground_infidelity": nan,
-        "excess_energy_ghz": nan,
-        "integrator": "",
-        "stats_json": "{}",
-        "wall_s": wall_s,
-        "status": status,
-        "message": message,
-    }
+    from .sweep import failed_columns
+
+    return {**failed_columns(wall_s), "status": status, "message": message}
 
 
 # ---------------------------------------------------------------------------

@@ -70,6 +70,7 @@ __all__ = [
     "PointPlan",
     "SweepOutcome",
     "SweepPoint",
+    "failed_columns",
     "format_summary",
     "load_sweep_spec",
     "point_key",
@@ -181,7 +182,8 @@ def _json_default(obj: Any) -> Any:
     return str(obj)
 
 
-def _nan_result(wall_s: float) -> dict[str, Any]:
+def failed_columns(wall_s: float) -> dict[str, Any]:
+    """The store's result columns of a point that produced no numbers (NaN metrics)."""
     nan = math.nan
     return {
         "trace_distance": nan,
@@ -280,12 +282,12 @@ def run_point(
         row["stats_json"] = json.dumps(stats, sort_keys=True, default=_json_default)
         row["warnings"] = WARNING_SEPARATOR.join(own)
     except InputError as exc:  # bad input: not a result; run_sweep stops and reports it
-        row.update(_nan_result(time.perf_counter() - t0))
+        row.update(failed_columns(time.perf_counter() - t0))
         row.update(status=INPUT_ERROR, message=exc.rule, input_field=exc.field)
     except Exception as exc:  # recorded as status "error": must not stop the sweep
         tb = traceback.extract_tb(exc.__traceback__)
         where = f" (at {tb[-1].filename}:{tb[-1].lineno})" if tb else ""
-        row.update(_nan_result(time.perf_counter() - t0))
+        row.update(failed_columns(time.perf_counter() - t0))
         row.update(status="error", message=f"{type(exc).__name__}: {exc}{where}")
     row["computed_at"] = utc_now()
     return row
