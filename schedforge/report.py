@@ -344,6 +344,19 @@ def _points_summary(rows: Sequence[Mapping[str, Any]]) -> str:
     )
 
 
+def _page_head(title: str, spec: Any, now: str) -> list[str]:
+    """The opening of a report page: title, version and time, spec, caution box."""
+    return [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f"<p>schedforge {__version__}, generated {now} (UTC). Spec: "
+        f"{html.escape(spec.source or 'given in Python')}.</p>",
+        f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
+    ]
+
+
 def _img(name: str, png: bytes, wide: bool = False) -> str:
     data = base64.b64encode(png).decode("ascii")
     cls = ' class="wide"' if wide else ""
@@ -378,13 +391,7 @@ def render_report(
     warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
-        f"<h1>{html.escape(title)}</h1>",
-        f"<p>schedforge {__version__}, generated {now} (UTC). Spec: "
-        f"{html.escape(spec.source or 'given in Python')}.</p>",
-        f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
+        *_page_head(title, spec, now),
     ]
     n_bad = sum(1 for r in rows if str(r.get("status", "")) != "ok")
     summary = html.escape(_points_summary(rows))
@@ -652,13 +659,7 @@ def render_noise_report(
                   "intended_probability_mean", "intended_probability_std",
                   "intended_probability_spread"]  # fmt: skip
     parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
-        f"<h1>{html.escape(title)}</h1>",
-        f"<p>schedforge {__version__}, generated {now} (UTC). Spec: "
-        f"{html.escape(spec.source or 'given in Python')}.</p>",
-        f'<div class="caution"><b>Caution.</b> {html.escape(CAUTION)}</div>',
+        *_page_head(title, spec, now),
         f"<p>{html.escape(model)}</p>",
     ]
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]

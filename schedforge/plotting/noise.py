@@ -14,21 +14,14 @@ import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
+from .scaling import _axes
+
 __all__ = [
     "plot_ensemble_histograms",
     "plot_flip_curve",
     "plot_size_growth",
     "plot_spread_vs_tf",
 ]
-
-
-def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
-    if ax is None:
-        fig = Figure(figsize=figsize, layout="constrained")
-        return fig, fig.add_subplot(1, 1, 1)
-    fig = ax.get_figure()
-    assert isinstance(fig, Figure)
-    return fig, ax
 
 
 def plot_flip_curve(precision: Any, ax: Axes | None = None) -> Figure:
