@@ -288,6 +288,8 @@ def test_unknown_section_gets_a_suggestion() -> None:
         ('version = 1\n[waveform]\nfilter = "boxcar"', "waveform.filter", "gaussian"),
         ("version = 1\n[waveform]\nsample_rate_gsps = -1.0", "waveform.sample_rate_gsps", "> 0"),
         ("version = 1\n[waveform]\nbreakpoints = 1", "waveform.breakpoints", ">= 2"),
+        ("version = 1\n[numerics]\nsecular_tol_ghz = 0.0", "numerics.secular_tol_ghz", "> 0"),
+        ('version = 1\n[numerics]\nsecular_tol_ghz = "a"', "numerics.secular_tol_ghz", "number"),
     ],
 )
 def test_bad_values_name_the_key_path(text: str, field: str, fragment: str) -> None:
@@ -355,3 +357,13 @@ def test_family_rules_are_applied_at_load(text: str, field: str, fragment: str) 
     err = error_of(text)
     assert err.field == field
     assert fragment in str(err)
+
+
+def test_secular_tolerance_is_read_and_hashed_only_when_set() -> None:
+    # numerics.secular_tol_ghz reaches the system (in rad/ns) and the physics hash, and
+    # a spec without it keeps the hash it had before the key existed
+    plain = parse("version = 1")
+    set_ = parse("version = 1\n[numerics]\nsecular_tol_ghz = 1e-5")
+    assert set_.numerics.secular_tol_ghz == 1e-5
+    assert "secular_tol_ghz" not in plain.physics_dict()["numerics"]
+    assert plain.physics_hash() != set_.physics_hash()
