@@ -8,7 +8,7 @@ Run from the repository root (about 10-30 minutes on a 2-core machine)::
 
 For each invented problem of the kind users write first (equal fields, uncoupled
 qubits, chains, stars, rings and triangles with uniform couplings, a chain with random
-couplings) and each tf and k_end, one point of the default (``auto``) integrator runs
+couplings, a 5-qubit chain and a 6-qubit ring) and each tf and k_end, one point of the default (``auto``) integrator runs
 in a child process, stopped after ``--limit`` seconds.  Beside it, the fully connected
 random instance of the same size from ``bench_eigenframe.py`` runs at the same tf and
 k_end, so the cost is read as a ratio measured in the same run (the machine is shared
@@ -54,6 +54,14 @@ PROBLEMS = {
     ),
     "random-chain": ProblemSpec(
         qubits=4, h=(0.13, -0.07, 0.21, 0.05), J=((0, 1, -0.83), (1, 2, 0.61), (2, 3, -0.94))
+    ),
+    "chain-5": ProblemSpec(
+        qubits=5, h=(0.1,) * 5, J=((0, 1, -1.0), (1, 2, -1.0), (2, 3, -1.0), (3, 4, -1.0))
+    ),
+    "ring-6": ProblemSpec(
+        qubits=6,
+        h=(0.1,) * 6,
+        J=((0, 1, -1.0), (1, 2, -1.0), (2, 3, -1.0), (3, 4, -1.0), (4, 5, -1.0), (0, 5, -1.0)),
     ),
 }
 
