@@ -215,7 +215,7 @@ def noise_physics_hash(spec: Spec) -> str:
 
 def intended_ground_probability(spec: Spec, rho: Any) -> float:
     """tr(P_0 rho) with P_0 the ground space of the *noiseless* H(1) of ``spec``."""
-    from .dynamics import System
+    from .system import System
 
     eig = System.from_spec(spec).eigen(1.0)
     v0 = eig.vectors[:, eig.labels == 0]

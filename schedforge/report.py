@@ -176,7 +176,7 @@ def load_sweep_spec(out_dir: str | Path) -> Spec:
 def _predictions(
     spec: Spec, keys: Sequence[tuple[str, float, float]]
 ) -> dict[tuple[str, float, float], Prediction]:
-    from .dynamics import System
+    from .system import System
 
     system = System.from_spec(spec)
     out = {}
@@ -186,7 +186,7 @@ def _predictions(
 
 
 def _gap_along_s(spec: Spec) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    from .dynamics import System
+    from .system import System
 
     system = System.from_spec(spec)
     s = np.linspace(0.0, 1.0, GAP_POINTS)
@@ -514,7 +514,7 @@ def analyse_sweep_dir(
     keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
     say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
     predictions = _predictions(spec, keys)
-    from .dynamics import System, curve_warnings
+    from .system import System, curve_warnings
 
     system = System.from_spec(spec)
     warnings = [f"Pre-flight warning: {w}" for w in system.preflight()]

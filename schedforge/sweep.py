@@ -400,12 +400,11 @@ def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
             build(sched_spec)
         else:
             schedules.make_schedule(fam, k_start=k0, k_end=k1)
-    from . import dynamics
+    from .integrators import get_integrator
+    from .system import System
 
-    system = dynamics.System.from_spec(spec)
-    resolve = getattr(dynamics, "get_integrator", None)
-    if resolve is not None:  # an unknown integrator name is bad input
-        resolve(spec.numerics.integrator, system)
+    system = System.from_spec(spec)
+    get_integrator(spec.numerics.integrator, system)  # an unknown integrator name is bad input
     return list(system.preflight() or [])
 
 

@@ -25,13 +25,14 @@ from scipy.integrate import solve_ivp
 from scipy.linalg import expm as scipy_expm
 from scipy.optimize import minimize_scalar
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
 from schedforge.integrators import eigenframe as ef
 from schedforge.integrators.collocation import lagrange_weights
 from schedforge.integrators.free_modes import expm_stack
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
+from schedforge.system import System
 
 
 @pytest.fixture(scope="module")

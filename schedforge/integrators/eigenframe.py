@@ -111,6 +111,7 @@ from scipy.sparse.linalg import LinearOperator, gmres
 
 from ..progress import report_anneal_progress
 from ..units import GHZ_TO_RAD_PER_NS
+from .base import INTEGRATORS, IntegrationOutcome, register_integrator
 from .collocation import DEFAULT_STAGES, CollocationScheme, collocation_scheme, lagrange_weights
 from .free_modes import (
     perturbation_ratios,
@@ -396,7 +397,7 @@ class EigenframeModel:
 
     @classmethod
     def from_system(cls, system: Any) -> EigenframeModel:
-        """The model of a :class:`schedforge.dynamics.System` with a bath."""
+        """The model of a :class:`schedforge.system.System` with a bath."""
         ham = system.hamiltonian
         scale = 0.5 * GHZ_TO_RAD_PER_NS
         driver = np.asarray(ham.driver, dtype=float)
@@ -1706,8 +1707,6 @@ def _fallback(
     stats: dict[str, Any] | None = None,
 ) -> Any:
     """Run the general integrator instead and say so."""
-    from ..dynamics import INTEGRATORS, IntegrationOutcome
-
     h1 = system.hamiltonian.matrix(1.0)
     h0 = system.hamiltonian.matrix(0.0)
     spread = max(np.ptp(np.linalg.eigvalsh(h0)), np.ptp(np.linalg.eigvalsh(h1)))
@@ -1750,7 +1749,7 @@ def eigenframe_integrator(
 
     Parameters
     ----------
-    system : schedforge.dynamics.System
+    system : schedforge.system.System
     schedule : schedforge.schedules.Schedule
     tf_ns : float
     rtol, atol : float
@@ -1762,8 +1761,6 @@ def eigenframe_integrator(
         ``stats["integrator"]`` names what actually ran; ``stats["fallback"]``
         gives the reason when the general integrator ran instead.
     """
-    from ..dynamics import IntegrationOutcome
-
     reason = _unsupported(system)
     if reason is not None:
         return _fallback(system, schedule, tf_ns, reason, rtol, atol)
@@ -1868,10 +1865,4 @@ def eigenframe_integrator(
     return IntegrationOutcome(deviation, rho, "ok", "", stats)
 
 
-def _register() -> None:
-    from ..dynamics import register_integrator
-
-    register_integrator("eigenframe", eigenframe_integrator)
-
-
-_register()
+register_integrator("eigenframe", eigenframe_integrator)
