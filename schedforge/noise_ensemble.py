@@ -25,7 +25,11 @@ later computes only the new ones.
 :func:`summarize_ensemble` gives per schedule and tf the mean, standard deviation and
 spread (std / mean) of both quantities, and per schedule and draw a scaling fit of
 the trace distance against tf (:func:`schedforge.analysis.fit_scaling`), to see
-whether the designed slope -(k_end + 1) survives the noise draw by draw.
+whether the error law survives the noise draw by draw.  The law is the one of the
+dynamics (:func:`schedforge.error_law.error_law`: open, ``tf^-(k_end + 1)``; closed,
+``tf^-(min(k_start, k_end) + 1)``), and each draw's fit only trusts anneal times long
+against that draw's own time scale (:func:`schedforge.error_law.law_time_scale_ns` of
+its noisy system, stored with each point).
 """
 
 from __future__ import annotations
@@ -41,12 +45,14 @@ import traceback
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
 
 from . import __version__
 from .control_noise import draw_normals, noisy_problem
+from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
 from .spec_model import NoiseSpec, Spec
@@ -314,6 +320,9 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
         stats = json.loads(r.get("stats_json") or "{}")
         info = stats.get("noise", {})
         ok = r["status"] == "ok"
+        # the draw's own pre-flight numbers (System.diagnostics, copied into the stats)
+        closed = "min_spectral_gap_ghz" in stats and "liouvillian_gap_final_ghz" not in stats
+        time_scale = law_time_scale_ns(SimpleNamespace(diagnostics=stats, closed=closed))
         p = info.get("intended_ground_probability", math.nan)
         out.append(
             {
@@ -326,6 +335,7 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
                 "intended_ground_probability": float(p) if ok and p is not None else math.nan,
                 "factor_A": float(info.get("factor_A", math.nan)),
                 "factor_B": float(info.get("factor_B", math.nan)),
+                "time_scale_ns": time_scale,
                 "status": r["status"],
                 "message": r.get("message", ""),
             }
@@ -346,7 +356,7 @@ def _moments(values: Sequence[float]) -> tuple[float, float, float]:
 
 
 def summarize_ensemble(
-    rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14
+    rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14, dynamics: str = OPEN
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
     """Distribution per (schedule, tf), and the error slope per (schedule, draw).
 
@@ -356,6 +366,10 @@ def summarize_ensemble(
         From :func:`read_ensemble_rows`.
     atol : float
         The integrator's ``atol`` (sets the numerical floor of the fits).
+    dynamics : {"open", "closed"}
+        Which error law the per-draw fits expect
+        (:func:`schedforge.error_law.dynamics_kind` of the spec).  A row's
+        ``time_scale_ns`` (when present) is the time tf must be long against.
 
     Returns
     -------
@@ -364,7 +378,8 @@ def summarize_ensemble(
         std and spread (std / mean) over the draws of the trace distance and of the
         intended ground-state probability (only draws whose status is ok).
     per_draw : list of dict
-        family, k_start, k_end, draw, slope, slope_stderr, expected_slope, verdict.
+        family, k_start, k_end, draw, slope, slope_stderr, expected_slope,
+        error_law, verdict, message.
     per_schedule : list of dict
         The nominal fit and, over the draws: how many were fitted, how many agree
         with the expected slope, and the mean and std of their slopes.
@@ -406,7 +421,11 @@ def summarize_ensemble(
         series.setdefault((r["family"], r["k_start"], r["k_end"], r["draw"]), []).append(r)
     per_draw = []
     floor = numerical_floor(atol)
+    if dynamics not in (OPEN, CLOSED):
+        raise ValueError(f"dynamics must be {OPEN!r} or {CLOSED!r}, got {dynamics!r}")
     for (fam, k0, k1, d), group in sorted(series.items()):
+        scales = [float(r.get("time_scale_ns", math.nan)) for r in group]
+        known = [t for t in scales if not math.isnan(t)]
         fit = fit_scaling(
             [r["tf_ns"] for r in group],
             [r["trace_distance"] for r in group],
@@ -417,6 +436,8 @@ def summarize_ensemble(
             k_start=k0,
             floor=floor,
             noise=atol,
+            dynamics=dynamics,
+            time_scale_ns=max(known) if known else math.nan,
         )
         per_draw.append(
             {
@@ -427,7 +448,9 @@ def summarize_ensemble(
                 "slope": fit.slope,
                 "slope_stderr": fit.slope_stderr,
                 "expected_slope": fit.expected_slope,
+                "error_law": fit.law.label,
                 "verdict": fit.verdict,
+                "message": fit.message,
             }
         )
     per_schedule = []
@@ -444,6 +467,7 @@ def summarize_ensemble(
                 "k_start": k0,
                 "k_end": k1,
                 "expected_slope": mine[0]["expected_slope"],
+                "error_law": mine[0]["error_law"],
                 "nominal_slope": nominal[0]["slope"] if nominal else math.nan,
                 "nominal_verdict": nominal[0]["verdict"] if nominal else "",
                 "draws": len(draws),
@@ -516,6 +540,7 @@ def run_noise_sweep(
     import functools
 
     from .control_noise import write_table_csv
+    from .error_law import dynamics_kind
     from .sweep import PointPlan, run_sweep
 
     check_draws(spec)
@@ -538,7 +563,9 @@ def run_noise_sweep(
         plan=plan,
     )
     rows = read_ensemble_rows(outcome.rows)
-    per_point, per_draw, per_schedule = summarize_ensemble(rows, atol=spec.numerics.atol)
+    per_point, per_draw, per_schedule = summarize_ensemble(
+        rows, atol=spec.numerics.atol, dynamics=dynamics_kind(spec)
+    )
     folder = Path(out_dir)
     files = {
         "ensemble": folder / "ensemble.csv",

@@ -210,3 +210,37 @@ def test_console_script_noise_sweep(tmp_path: Path, write_spec) -> None:
     html = (res / "noise-report.html").read_text(encoding="utf-8")
     assert "which schedule degrades least" in html and html.count("<img") >= 4
     assert not math.isnan(float((res / "ensemble.csv").read_text().splitlines()[1].split(",")[5]))
+
+
+# -- the error law of the dynamics (closed systems) ------------------------------------
+CLOSED = {
+    "version": 1,
+    "device": {"curves": "linear", "A0_ghz": 1.0, "B0_ghz": 1.0},
+    "problem": {"qubits": 1, "h": [0.5]},
+    "bath": {"spectrum": "none"},
+    "schedule": {"family": "beta", "k_start": 0, "k_end": 2, "tf_ns": 40.0},
+    "initial": {"state": "ground"},
+    "sweep": {"tf_ns": [40.0, 80.0, 160.0]},
+    "noise": {"level": 0.05, "amplitude_level": 0.02, "draws": 2, "seed": 3},
+}
+
+
+def test_closed_ensemble_fits_use_the_closed_law(tmp_path: Path) -> None:
+    """Closed (unitary) dynamics, k_start = 0, k_end = 2: every draw falls as tf^-1, the
+    boundary term of the start (Lidar, Rezakhani and Hamma, J. Math. Phys. 50, 102106
+    (2009), from memory; the local slope is measured directly here against numpy), not
+    tf^-3 as the open-system law would say."""
+    spec = parse_spec(json.loads(json.dumps(CLOSED)), ".")
+    out = run_noise_sweep(spec, tmp_path / "closed", "serial", progress="quiet")
+    assert all(r["status"] == "ok" for r in out.rows)
+    for d in (NOMINAL, 0, 1):
+        td = [r["trace_distance"] for r in out.rows if r["draw"] == d]
+        measured = np.polyfit(np.log([40.0, 80.0, 160.0]), np.log(td), 1)[0]
+        assert measured == pytest.approx(-1.0, abs=0.05)
+    (sched,) = out.per_schedule
+    assert sched["expected_slope"] == -1.0
+    assert sched["nominal_verdict"] == "agrees"
+    assert sched["agrees"] == 2 and sched["fitted"] == 2
+    for r in out.per_draw:
+        assert r["slope"] == pytest.approx(-1.0, abs=0.05)
+        assert r["error_law"].startswith("closed")
