@@ -18,9 +18,11 @@ Per point the store keeps the trace distance to the *noisy* problem's own final
 steady state and, in ``stats_json["noise"]``, the probability of the *intended*
 (noiseless) ground space of H(1) at the end.  The points of draw ``d`` are stored with
 ``variant = "draw-<d>"``; the noiseless points (``variant = "nominal"``) are run too,
-for reference.  The store is keyed by the spec's physics and the noise model (level,
-terms, amplitude level, seed), not by the number of draws: asking for more draws
-later computes only the new ones.
+for reference.  When the spec has a ``[waveform]`` section, every point also has a
+played twin (the sweep's ``"realized"`` variant: the samples the hardware plays, on the
+draw's device), stored with ``"-realized"`` appended to the variant.  The store is
+keyed by the spec's physics and the noise model (level, terms, amplitude level, seed),
+not by the number of draws: asking for more draws later computes only the new ones.
 
 :func:`summarize_ensemble` gives per schedule and tf the mean, standard deviation and
 spread (std / mean) of both quantities, and per schedule and draw a scaling fit of
@@ -59,6 +61,7 @@ from .spec_model import NoiseSpec, Spec
 
 __all__ = [
     "NOMINAL",
+    "REALIZED_SUFFIX",
     "DrawErrors",
     "EnsemblePoint",
     "NoiseSweepOutcome",
@@ -68,6 +71,7 @@ __all__ = [
     "intended_ground_probability",
     "noise_physics_hash",
     "noisy_spec",
+    "parse_variant",
     "read_ensemble_rows",
     "run_ensemble_point",
     "run_noise_sweep",
@@ -156,53 +160,94 @@ def noisy_spec(spec: Spec, draw: int) -> Spec:
 # ---------------------------------------------------------------------------
 # points
 # ---------------------------------------------------------------------------
+#: Suffix of the store variant of a point run as the hardware plays it.
+REALIZED_SUFFIX = "-realized"
+
+
 @dataclass(frozen=True, order=True)
 class EnsemblePoint:
-    """One anneal of the ensemble: a schedule, an anneal time and a draw (-1: nominal)."""
+    """One anneal of the ensemble: a schedule, an anneal time and a draw (-1: nominal).
+
+    ``played`` points run the waveform the hardware plays (the sweep's ``"realized"``
+    variant, :func:`schedforge.waveform.realize` with the spec's ``[waveform]``)
+    under the draw's errors: the samples are those of the designed schedule (the
+    control errors do not change what the generator plays), the device that plays
+    them is the draw's.
+    """
 
     family: str
     k_start: float
     k_end: float
     tf_ns: float
     draw: int
+    played: bool = False
+
+    @property
+    def sweep_variant(self) -> str:
+        """The sweep's variant: ``"ideal"`` (designed) or ``"realized"`` (played)."""
+        return "realized" if self.played else "ideal"
 
     @property
     def variant(self) -> str:
-        """``"nominal"`` or ``"draw-<d>"`` (stored in the store's variant column)."""
-        return "nominal" if self.draw == NOMINAL else f"draw-{self.draw:05d}"
+        """The store's variant column: ``"nominal"`` or ``"draw-<d>"``, with
+        ``"-realized"`` appended for played points."""
+        base = "nominal" if self.draw == NOMINAL else f"draw-{self.draw:05d}"
+        return base + (REALIZED_SUFFIX if self.played else "")
 
     def canonical(self) -> str:
-        """Canonical JSON of the coordinates (floats as ``repr``), used in the key."""
-        return json.dumps(
-            {
-                "family": self.family,
-                "k_start": repr(float(self.k_start)),
-                "k_end": repr(float(self.k_end)),
-                "tf_ns": repr(float(self.tf_ns)),
-                "draw": int(self.draw),
-            },
-            sort_keys=True,
-        )
+        """Canonical JSON of the coordinates (floats as ``repr``), used in the key.
+
+        A designed point's text is what it was before played points existed, so a
+        store of designed points keeps its keys.
+        """
+        coords: dict[str, Any] = {
+            "family": self.family,
+            "k_start": repr(float(self.k_start)),
+            "k_end": repr(float(self.k_end)),
+            "tf_ns": repr(float(self.tf_ns)),
+            "draw": int(self.draw),
+        }
+        if self.played:
+            coords["variant"] = "realized"
+        return json.dumps(coords, sort_keys=True)
 
     def label(self) -> str:
-        """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"``."""
+        """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"`` (``" realized"`` appended)."""
         k = "" if self.family == "linear" else f" k={self.k_start:g}/{self.k_end:g}"
         d = "nominal" if self.draw == NOMINAL else f"draw {self.draw}"
-        return f"{self.family}{k} tf={self.tf_ns:g} ns {d}"
+        return f"{self.family}{k} tf={self.tf_ns:g} ns {d}" + (" realized" if self.played else "")
+
+
+def parse_variant(variant: str) -> tuple[int, str] | None:
+    """``(draw, sweep variant)`` of a store variant of an ensemble; None for others.
+
+    ``"nominal"`` -> ``(NOMINAL, "ideal")``, ``"draw-00007-realized"`` ->
+    ``(7, "realized")``.
+    """
+    played = variant.endswith(REALIZED_SUFFIX)
+    base = variant[: -len(REALIZED_SUFFIX)] if played else variant
+    kind = "realized" if played else "ideal"
+    if base == "nominal":
+        return NOMINAL, kind
+    if base.startswith("draw-") and base[5:].isdigit():
+        return int(base[5:]), kind
+    return None
 
 
 def ensemble_points(spec: Spec) -> list[EnsemblePoint]:
-    """Every (schedule, tf) of the spec's grid x (nominal + ``noise.draws`` draws), sorted.
+    """Every point of the spec's grid x (nominal + ``noise.draws`` draws), sorted.
 
-    Only the designed (ideal) schedules: realized-waveform twins are not run.
+    With a ``[waveform]`` section the grid has played ("realized") twins, and so
+    does the ensemble: each draw runs the played waveform too.
     """
     from .sweep import sweep_points
 
     noise = _noise(spec)
-    grid = [p for p in sweep_points(spec) if p.variant == "ideal"]
     draws = [NOMINAL, *range(noise.draws)]
     return sorted(
-        EnsemblePoint(p.family, p.k_start, p.k_end, p.tf_ns, d) for p in grid for d in draws
+        EnsemblePoint(p.family, p.k_start, p.k_end, p.tf_ns, d, p.variant == "realized")
+        for p in sweep_points(spec)
+        for d in draws
     )
 
 
@@ -250,7 +295,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
 
     row: dict[str, Any] = {
         "family": point.family,
-        "variant": point.variant,
+        "variant": point.variant,  # nominal / draw-<d>, with -realized for played points
         "k_start": float(point.k_start),
         "k_end": float(point.k_end),
         "tf_ns": float(point.tf_ns),
@@ -267,6 +312,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
             k_end=point.k_end,
             family=point.family,
             k_start=point.k_start,
+            variant=point.sweep_variant,
         )
         row.update(result_columns(result))
         p_int = (
@@ -310,13 +356,10 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
     """Flat ensemble rows from store rows: coordinates, draw, both quantities, status."""
     out = []
     for r in rows:
-        variant = str(r["variant"])
-        if variant == "nominal":
-            draw = NOMINAL
-        elif variant.startswith("draw-"):
-            draw = int(variant[5:])
-        else:
+        parsed = parse_variant(str(r["variant"]))
+        if parsed is None:
             continue
+        draw, variant = parsed
         stats = json.loads(r.get("stats_json") or "{}")
         info = stats.get("noise", {})
         ok = r["status"] == "ok"
@@ -327,6 +370,7 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
         out.append(
             {
                 "family": r["family"],
+                "variant": variant,
                 "k_start": float(r["k_start"]),
                 "k_end": float(r["k_end"]),
                 "tf_ns": float(r["tf_ns"]),
@@ -340,7 +384,9 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
                 "message": r.get("message", ""),
             }
         )
-    out.sort(key=lambda x: (x["family"], x["k_start"], x["k_end"], x["tf_ns"], x["draw"]))
+    out.sort(
+        key=lambda x: (x["family"], x["variant"], x["k_start"], x["k_end"], x["tf_ns"], x["draw"])
+    )
     return out
 
 
@@ -355,10 +401,18 @@ def _moments(values: Sequence[float]) -> tuple[float, float, float]:
     return mean, std, spread
 
 
+def _schedule_key(r: Mapping[str, Any]) -> tuple[str, str, float, float]:
+    """(family, variant, k_start, k_end) of an ensemble row (variant "ideal" if absent)."""
+    return (str(r["family"]), str(r.get("variant", "ideal")), r["k_start"], r["k_end"])
+
+
 def summarize_ensemble(
     rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14, dynamics: str = OPEN
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
     """Distribution per (schedule, tf), and the error slope per (schedule, draw).
+
+    A schedule is (family, variant, k_start, k_end): a played ("realized") twin is
+    summarized and fitted on its own.
 
     Parameters
     ----------
@@ -374,11 +428,11 @@ def summarize_ensemble(
     Returns
     -------
     per_point : list of dict
-        family, k_start, k_end, tf_ns, draws, ok, the nominal values, and the mean,
-        std and spread (std / mean) over the draws of the trace distance and of the
-        intended ground-state probability (only draws whose status is ok).
+        family, variant, k_start, k_end, tf_ns, draws, ok, the nominal values, and
+        the mean, std and spread (std / mean) over the draws of the trace distance
+        and of the intended ground-state probability (only draws whose status is ok).
     per_draw : list of dict
-        family, k_start, k_end, draw, slope, slope_stderr, expected_slope,
+        family, variant, k_start, k_end, draw, slope, slope_stderr, expected_slope,
         error_law, verdict, message.
     per_schedule : list of dict
         The nominal fit and, over the draws: how many were fitted, how many agree
@@ -386,11 +440,13 @@ def summarize_ensemble(
     """
     from .analysis import AGREES, fit_scaling, numerical_floor
 
-    groups: dict[tuple[str, float, float, float], list[Mapping[str, Any]]] = {}
+    if dynamics not in (OPEN, CLOSED):
+        raise ValueError(f"dynamics must be {OPEN!r} or {CLOSED!r}, got {dynamics!r}")
+    groups: dict[tuple[Any, ...], list[Mapping[str, Any]]] = {}
     for r in rows:
-        groups.setdefault((r["family"], r["k_start"], r["k_end"], r["tf_ns"]), []).append(r)
+        groups.setdefault((*_schedule_key(r), r["tf_ns"]), []).append(r)
     per_point = []
-    for (fam, k0, k1, tf), group in sorted(groups.items()):
+    for (fam, var, k0, k1, tf), group in sorted(groups.items()):
         draws = [r for r in group if r["draw"] != NOMINAL]
         ok = [r for r in draws if r["status"] == "ok"]
         nominal = [r for r in group if r["draw"] == NOMINAL]
@@ -399,6 +455,7 @@ def summarize_ensemble(
         per_point.append(
             {
                 "family": fam,
+                "variant": var,
                 "k_start": k0,
                 "k_end": k1,
                 "tf_ns": tf,
@@ -416,14 +473,12 @@ def summarize_ensemble(
                 "intended_probability_spread": pg[2],
             }
         )
-    series: dict[tuple[str, float, float, int], list[Mapping[str, Any]]] = {}
+    series: dict[tuple[Any, ...], list[Mapping[str, Any]]] = {}
     for r in rows:
-        series.setdefault((r["family"], r["k_start"], r["k_end"], r["draw"]), []).append(r)
+        series.setdefault((*_schedule_key(r), r["draw"]), []).append(r)
     per_draw = []
     floor = numerical_floor(atol)
-    if dynamics not in (OPEN, CLOSED):
-        raise ValueError(f"dynamics must be {OPEN!r} or {CLOSED!r}, got {dynamics!r}")
-    for (fam, k0, k1, d), group in sorted(series.items()):
+    for (fam, var, k0, k1, d), group in sorted(series.items()):
         scales = [float(r.get("time_scale_ns", math.nan)) for r in group]
         known = [t for t in scales if not math.isnan(t)]
         fit = fit_scaling(
@@ -432,7 +487,7 @@ def summarize_ensemble(
             k_end=k1,
             status=[r["status"] for r in group],
             family=fam,
-            variant="nominal" if d == NOMINAL else f"draw-{d:05d}",
+            variant=var,
             k_start=k0,
             floor=floor,
             noise=atol,
@@ -442,6 +497,7 @@ def summarize_ensemble(
         per_draw.append(
             {
                 "family": fam,
+                "variant": var,
                 "k_start": k0,
                 "k_end": k1,
                 "draw": d,
@@ -454,18 +510,18 @@ def summarize_ensemble(
             }
         )
     per_schedule = []
-    keys = sorted({(r["family"], r["k_start"], r["k_end"]) for r in per_draw})
-    for fam, k0, k1 in keys:
-        mine = [r for r in per_draw if (r["family"], r["k_start"], r["k_end"]) == (fam, k0, k1)]
+    for key in sorted({_schedule_key(r) for r in per_draw}):
+        mine = [r for r in per_draw if _schedule_key(r) == key]
         nominal = [r for r in mine if r["draw"] == NOMINAL]
         draws = [r for r in mine if r["draw"] != NOMINAL]
         slopes = [r["slope"] for r in draws if math.isfinite(r["slope"])]
         mean, std, _ = _moments(slopes)
         per_schedule.append(
             {
-                "family": fam,
-                "k_start": k0,
-                "k_end": k1,
+                "family": key[0],
+                "variant": key[1],
+                "k_start": key[2],
+                "k_end": key[3],
                 "expected_slope": mine[0]["expected_slope"],
                 "error_law": mine[0]["error_law"],
                 "nominal_slope": nominal[0]["slope"] if nominal else math.nan,

@@ -266,3 +266,39 @@ def test_closed_ensemble_fits_use_the_closed_law(tmp_path: Path) -> None:
     for r in out.per_draw:
         assert r["slope"] == pytest.approx(-1.0, abs=0.05)
         assert r["error_law"].startswith("closed")
+
+
+# -- played (realized) waveforms ---------------------------------------------------------
+def test_played_twins_run_under_each_draw(tmp_path: Path) -> None:
+    """With a [waveform] section each draw also runs the waveform the hardware plays; a
+    played draw equals the noisy problem rebuilt by hand from numpy's SeedSequence and
+    run alone as played through simulate_spec."""
+    data = json.loads(json.dumps(BASE))
+    data["sweep"]["tf_ns"] = [60.0]
+    data["noise"]["draws"] = 1
+    data["waveform"] = {"sample_rate_gsps": 1.0, "dac_bits": 14, "bandwidth_mhz": 250.0,
+                        "filter": "gaussian"}  # fmt: skip
+    spec = parse_spec(data)
+    points = ensemble_points(spec)
+    assert sorted((p.draw, p.sweep_variant) for p in points) == [
+        (NOMINAL, "ideal"), (NOMINAL, "realized"), (0, "ideal"), (0, "realized")
+    ]  # fmt: skip
+    out = run_noise_sweep(spec, tmp_path / "played", "serial", progress="quiet")
+    played = {(r["draw"], r["variant"]): r for r in out.rows}
+    z = np.random.default_rng(np.random.SeedSequence([9, 0])).standard_normal(3)
+    by_hand = dataclasses.replace(
+        spec,
+        problem=dataclasses.replace(spec.problem, h=(0.7 + 0.1 * 0.7 * z[0],)),
+        device=dataclasses.replace(
+            spec.device, A0_ghz=3.5 * (1 + 0.05 * z[1]), B0_ghz=2.5 * (1 + 0.05 * z[2])
+        ),
+    )
+    alone = simulate_spec(by_hand, tf_ns=60.0, variant="realized")
+    row = played[(0, "realized")]
+    assert row["status"] == "ok"
+    assert row["trace_distance"] == pytest.approx(alone.trace_distance, rel=1e-9)
+    # the played waveform is not the designed one: the twins differ
+    assert abs(row["trace_distance"] / played[(0, "ideal")]["trace_distance"] - 1) > 0.1
+    variants = {(r["variant"], r["draw"]) for r in out.per_draw}
+    assert variants == {("ideal", NOMINAL), ("ideal", 0), ("realized", NOMINAL), ("realized", 0)}
+    assert {r["variant"] for r in out.per_point} == {"ideal", "realized"}

@@ -69,6 +69,14 @@ def _notes(outcome: Any) -> list[str]:
     return notes
 
 
+def _name(r: Any) -> str:
+    """``"beta 0/2"``, ``"linear"``, with ``" played"`` for a realized twin."""
+    name = (
+        r["family"] if r["family"] == "linear" else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
+    )
+    return name + (" played" if r.get("variant") == "realized" else "")
+
+
 def format_ensemble(outcome: Any) -> str:
     """Plain-text summary: per schedule the slope survival, per point the spreads."""
 
@@ -76,32 +84,24 @@ def format_ensemble(outcome: Any) -> str:
         return f"{v:.3g}" if v == v else "-"
 
     lines = [
-        f"{'schedule':<16} {'expected':>8} {'nominal':>8} {'draws':>5} {'agree':>5} "
+        f"{'schedule':<20} {'expected':>8} {'nominal':>8} {'draws':>5} {'agree':>5} "
         f"{'slope mean':>10} {'slope std':>9}"
     ]
     for r in outcome.per_schedule:
-        name = (
-            r["family"]
-            if r["family"] == "linear"
-            else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
-        )
+        name = _name(r)
         lines.append(
-            f"{name:<16} {num(r['expected_slope']):>8} {num(r['nominal_slope']):>8} "
+            f"{name:<20} {num(r['expected_slope']):>8} {num(r['nominal_slope']):>8} "
             f"{r['draws']:>5} {r['agrees']:>5} {num(r['slope_mean']):>10} {num(r['slope_std']):>9}"
         )
     lines.append("")
     lines.append(
-        f"{'schedule':<16} {'tf_ns':>8} {'ok':>5} {'TD nominal':>10} {'TD mean':>9} "
+        f"{'schedule':<20} {'tf_ns':>8} {'ok':>5} {'TD nominal':>10} {'TD mean':>9} "
         f"{'TD spread':>9} {'P0 mean':>8} {'P0 spread':>9}"
     )
     for r in outcome.per_point:
-        name = (
-            r["family"]
-            if r["family"] == "linear"
-            else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
-        )
+        name = _name(r)
         lines.append(
-            f"{name:<16} {r['tf_ns']:>8g} {r['ok']:>5} {num(r['nominal_trace_distance']):>10} "
+            f"{name:<20} {r['tf_ns']:>8g} {r['ok']:>5} {num(r['nominal_trace_distance']):>10} "
             f"{num(r['trace_distance_mean']):>9} {num(r['trace_distance_spread']):>9} "
             f"{num(r['intended_probability_mean']):>8} "
             f"{num(r['intended_probability_spread']):>9}"
