@@ -62,6 +62,7 @@ from .spec_model import NoiseSpec, Spec
 __all__ = [
     "NOMINAL",
     "REALIZED_SUFFIX",
+    "TABLE_FILES",
     "DrawErrors",
     "EnsemblePoint",
     "NoiseSweepOutcome",
@@ -69,6 +70,7 @@ __all__ = [
     "draw_errors",
     "ensemble_points",
     "intended_ground_probability",
+    "noise_from_json",
     "noise_physics_hash",
     "noisy_spec",
     "parse_variant",
@@ -76,6 +78,8 @@ __all__ = [
     "run_ensemble_point",
     "run_noise_sweep",
     "summarize_ensemble",
+    "tabulate_ensemble",
+    "write_ensemble_tables",
 ]
 
 #: Draw index of the noiseless reference points.
@@ -563,6 +567,58 @@ class NoiseSweepOutcome:
     files: dict[str, Path]
 
 
+def noise_from_json(data: Mapping[str, Any]) -> NoiseSpec:
+    """The ``[noise]`` section a run recorded (``dataclasses.asdict``, read back from JSON)."""
+    from .spec_model import ProblemFamilySpec
+
+    fields = {k: tuple(v) if isinstance(v, list) else v for k, v in data.items()}
+    problems = fields.pop("problems", None)
+    if problems is not None:
+        problems = ProblemFamilySpec(
+            **{k: tuple(v) if isinstance(v, list) else v for k, v in problems.items()}
+        )
+    return NoiseSpec(**fields, problems=problems)
+
+
+def tabulate_ensemble(
+    spec: Spec, store_rows: Sequence[Mapping[str, Any]]
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
+    """``(rows, per_point, per_draw, per_schedule)`` of the stored points of an ensemble.
+
+    :func:`read_ensemble_rows`, then :func:`summarize_ensemble` with the spec's
+    ``atol`` and the error law of its dynamics.
+    """
+    from .error_law import dynamics_kind
+
+    rows = read_ensemble_rows(store_rows)
+    per_point, per_draw, per_schedule = summarize_ensemble(
+        rows, atol=spec.numerics.atol, dynamics=dynamics_kind(spec)
+    )
+    return rows, per_point, per_draw, per_schedule
+
+
+#: File names of the ensemble tables, by table.
+TABLE_FILES = {
+    "ensemble": "ensemble.csv",
+    "summary": "ensemble-summary.csv",
+    "slopes": "ensemble-slopes.csv",
+    "schedules": "ensemble-schedules.csv",
+}
+
+
+def write_ensemble_tables(
+    out_dir: str | os.PathLike[str], tables: Sequence[Sequence[Mapping[str, Any]]]
+) -> dict[str, Path]:
+    """Write the four tables of :func:`tabulate_ensemble` (:data:`TABLE_FILES`), each atomically."""
+    from .control_noise import write_table_csv
+
+    folder = Path(out_dir)
+    files = {name: folder / file for name, file in TABLE_FILES.items()}
+    for name, table in zip(TABLE_FILES, tables, strict=True):
+        write_table_csv(files[name], table)
+    return files
+
+
 def check_draws(spec: Spec) -> None:
     """Build every draw's spec once, so that bad input stops the run before it starts."""
     noise = _noise(spec)
@@ -595,8 +651,6 @@ def run_noise_sweep(
     """
     import functools
 
-    from .control_noise import write_table_csv
-    from .error_law import dynamics_kind
     from .sweep import PointPlan, run_sweep
 
     check_draws(spec)
@@ -618,22 +672,6 @@ def run_noise_sweep(
         progress_stream=progress_stream,
         plan=plan,
     )
-    rows = read_ensemble_rows(outcome.rows)
-    per_point, per_draw, per_schedule = summarize_ensemble(
-        rows, atol=spec.numerics.atol, dynamics=dynamics_kind(spec)
-    )
-    folder = Path(out_dir)
-    files = {
-        "ensemble": folder / "ensemble.csv",
-        "summary": folder / "ensemble-summary.csv",
-        "slopes": folder / "ensemble-slopes.csv",
-        "schedules": folder / "ensemble-schedules.csv",
-    }
-    for name, table in (
-        ("ensemble", rows),
-        ("summary", per_point),
-        ("slopes", per_draw),
-        ("schedules", per_schedule),
-    ):
-        write_table_csv(files[name], table)
+    rows, per_point, per_draw, per_schedule = tables = tabulate_ensemble(spec, outcome.rows)
+    files = write_ensemble_tables(out_dir, tables)
     return NoiseSweepOutcome(outcome, rows, per_point, per_draw, per_schedule, files)

@@ -33,7 +33,7 @@ import os
 import socket
 import time
 import traceback
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -77,6 +77,7 @@ __all__ = [
     "result_columns",
     "run_point",
     "run_sweep",
+    "spec_from_json",
     "sweep_points",
 ]
 
@@ -573,6 +574,20 @@ _SECTIONS: dict[str, type] = {
 }
 
 
+def spec_from_json(data: Mapping[str, Any]) -> Spec:
+    """The spec a run recorded (``dataclasses.asdict`` of it, read back from JSON).
+
+    Every section but ``[noise]`` (see :func:`schedforge.noise_ensemble.noise_from_json`).
+    """
+    kwargs = {
+        name: None
+        if data.get(name) is None
+        else cls(**{k: _tuplify(v) for k, v in data[name].items()})
+        for name, cls in _SECTIONS.items()
+    }
+    return Spec(version=data["version"], source=data.get("source"), **kwargs)
+
+
 def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
     """The spec of the latest run recorded in ``out_dir/sweep.sqlite``.
 
@@ -600,14 +615,7 @@ def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
         physics_hash = store.physics_hash
     if not runs:
         raise InputError(str(path), "records no sweep run (no spec to read)")
-    data = json.loads(runs[-1]["spec_json"])
-    kwargs = {
-        name: None
-        if data.get(name) is None
-        else cls(**{k: _tuplify(v) for k, v in data[name].items()})
-        for name, cls in _SECTIONS.items()
-    }
-    spec = Spec(version=data["version"], source=data.get("source"), **kwargs)
+    spec = spec_from_json(json.loads(runs[-1]["spec_json"]))
     if spec.physics_hash() != physics_hash:
         raise InputError(str(path), "holds a spec that does not match its physics hash (corrupt?)")
     return spec

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 import subprocess
 import sys
 from pathlib import Path
@@ -211,7 +210,9 @@ def test_cli_noise_sweep_errors_exit_2(run_cli, write_spec, tmp_path: Path) -> N
     assert not out.exists()
 
 
-def test_console_script_noise_sweep(tmp_path: Path, write_spec) -> None:
+def test_console_script_noise_sweep_writes_one_report(tmp_path: Path, write_spec) -> None:
+    """noise-sweep writes one report.html: the control-error section above the sweep report
+    of the noiseless points; `schedforge report DIR` rebuilds it from the store."""
     text = (
         "version = 1\n[problem]\nqubits = 1\nh = [0.7]\n[bath]\neta = 2e-2\n"
         "[schedule]\nk_end = 1\n[sweep]\ntf_ns = [60.0, 120.0]\n"
@@ -227,11 +228,34 @@ def test_console_script_noise_sweep(tmp_path: Path, write_spec) -> None:
     assert proc.returncode == 0, proc.stderr
     res = tmp_path / "res"
     for name in ("ensemble.csv", "ensemble-summary.csv", "ensemble-slopes.csv",
-                 "ensemble-schedules.csv", "noise-report.html", "points.csv"):  # fmt: skip
+                 "ensemble-schedules.csv", "report.html", "fit.csv", "spec.toml",
+                 "points.csv", "plots/noise_precision_curve.png"):  # fmt: skip
         assert (res / name).is_file(), name
-    html = (res / "noise-report.html").read_text(encoding="utf-8")
-    assert "which schedule degrades least" in html and html.count("<img") >= 4
-    assert not math.isnan(float((res / "ensemble.csv").read_text().splitlines()[1].split(",")[5]))
+    assert not (res / "noise-report.html").exists()
+    html = (res / "report.html").read_text(encoding="utf-8")
+    section = html[html.index('<section id="control-errors">') : html.index("</section>")]
+    assert "which schedule degrades least" in section
+    assert section.count("<img") == 6  # 3 histograms, 2 spreads, the precision curve
+    assert html.index("</section>") < html.index("<h2>Scaling fits</h2>")
+    # the mean shown is the mean over the draws in ensemble.csv (numpy)
+    import csv
+
+    with open(res / "ensemble.csv", newline="") as fh:
+        table = list(csv.DictReader(fh))
+    td = [float(r["trace_distance"]) for r in table if r["draw"] != "-1" and r["tf_ns"] == "120.0"]
+    assert f"{np.mean(td):.4g}" in section
+    # the sweep part fits the noiseless points, as ideal
+    with open(res / "fit.csv", newline="") as fh:
+        fits = list(csv.DictReader(fh))
+    assert [(f["family"], f["variant"]) for f in fits] == [("beta", "ideal")]
+    (res / "report.html").unlink()
+    proc = subprocess.run(
+        [*cmd, "report", "res"], cwd=tmp_path, capture_output=True, text=True, timeout=300,
+        stdin=subprocess.DEVNULL,
+    )  # fmt: skip
+    assert proc.returncode == 0, proc.stderr
+    again = (res / "report.html").read_text(encoding="utf-8")
+    assert again.count("<img") == html.count("<img") and f"{np.mean(td):.4g}" in again
 
 
 # -- the error law of the dynamics (closed systems) ------------------------------------

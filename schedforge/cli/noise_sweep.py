@@ -3,7 +3,9 @@
 Every (schedule, tf) of the spec's ``[sweep]`` grid is simulated for the noiseless
 problem and for each noise draw of ``[noise]``, through the sweep engine (resumable
 ``DIR/sweep.sqlite``, executors, progress).  Writes ``DIR/points.csv``, the ensemble
-tables (``ensemble*.csv``) and ``DIR/noise-report.html``.
+tables (``ensemble*.csv``) and one report, ``DIR/report.html``: the control-error
+section (:mod:`schedforge.noise_report`) above the sweep report of the noiseless points
+(with ``DIR/fit.csv``, ``DIR/spec.toml`` and ``DIR/plots/``).
 """
 
 from __future__ import annotations
@@ -50,23 +52,6 @@ def register(subparsers: Any) -> None:
     p.add_argument("--retry-failed", action="store_true", help="recompute points not ok")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(handler=run)
-
-
-def _notes(outcome: Any) -> list[str]:
-    notes = [f"warning (every point): {w}" for w in outcome.sweep.warnings]
-    failed = outcome.sweep.failed
-    if failed:
-        notes.append(
-            f"{len(failed)} point(s) did not succeed; they are left out of the statistics "
-            "(see the status column of points.csv)."
-        )
-    fallbacks = sum("fallback" in str(r.get("integrator", "")) for r in outcome.sweep.rows)
-    if fallbacks:
-        notes.append(
-            f"{fallbacks} of {len(outcome.sweep.rows)} points were handed over to the "
-            "general integrator (see points.csv)."
-        )
-    return notes
 
 
 def _name(r: Any) -> str:
@@ -118,11 +103,8 @@ def run(args: argparse.Namespace) -> int:
     0: complete (failed points are listed); 1: points lost by the executor; 2: bad
     input; 130: interrupted (finished points are stored).
     """
-    from ..control_noise import problem_precision
-    from ..fileio import atomic_write_text
     from ..noise_ensemble import run_noise_sweep
-    from ..problem_families import IsingProblem
-    from ..report import noise_figures, render_noise_report
+    from ..noise_report import ensemble_notes, write_noise_report
     from ..spec import load_spec
 
     kind = _executor_kind(args)
@@ -147,16 +129,13 @@ def run(args: argparse.Namespace) -> int:
                 file=sys.stderr,
             )
             return 130
-    precision = problem_precision(IsingProblem.from_spec(spec.problem), spec.noise)
-    notes = _notes(outcome)
-    html = render_noise_report(spec, outcome, noise_figures(outcome, precision), notes=notes)
-    report = out / "noise-report.html"
-    atomic_write_text(report, html)
+    notes = ensemble_notes(outcome.sweep.rows)
+    analysis = write_noise_report(out, spec, outcome.sweep.rows, notes=notes)
     if not args.quiet:
         print(format_ensemble(outcome))
-        for n in notes:
+        for n in [*(f"warning (every point): {w}" for w in outcome.sweep.warnings), *notes]:
             print(n)
-        for path in [*outcome.files.values(), report]:
+        for path in [*outcome.files.values(), analysis.fit_csv, analysis.report_html]:
             print(f"wrote {path}")
     if not outcome.sweep.complete:
         missing = outcome.sweep.n_points - outcome.sweep.n_done
