@@ -42,6 +42,7 @@ from . import __version__
 from .error_law import NO_K_END_FAMILIES
 from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
+from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
 from .spec_model import (
     BathSpec,
@@ -184,11 +185,8 @@ def _json_default(obj: Any) -> Any:
 
 def failed_columns(wall_s: float) -> dict[str, Any]:
     """The store's result columns of a point that produced no numbers (NaN metrics)."""
-    nan = math.nan
     return {
-        "trace_distance": nan,
-        "ground_infidelity": nan,
-        "excess_energy_ghz": nan,
+        **nan_metrics(),
         "integrator": "",
         "stats_json": "{}",
         "wall_s": wall_s,
@@ -209,13 +207,11 @@ def _played_note(pending: Sequence[SweepPoint]) -> str:
 def result_columns(result: Any) -> dict[str, Any]:
     """The store's columns that a :class:`~schedforge.dynamics.SimulationResult` fills.
 
-    Metrics, status, message and the integrator that ran; shared by the sweep and the
-    noise ensembles so both store a point the same way.
+    Every metric of :data:`schedforge.metrics.METRICS`, ``wall_s``, status, message
+    and the integrator that ran; shared by the sweep and the noise ensembles so both
+    store a point the same way.
     """
-    row: dict[str, Any] = {
-        name: float(getattr(result, name))
-        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s")
-    }
+    row: dict[str, Any] = {**metric_values(result), "wall_s": float(result.wall_s)}
     row["status"] = str(result.status)
     row["message"] = str(result.message or "")
     row["integrator"] = str(result.integrator or "")
@@ -247,8 +243,8 @@ def run_point(
     Returns
     -------
     dict
-        Coordinates, ``trace_distance``, ``ground_infidelity``,
-        ``excess_energy_ghz``, ``status``, ``message``, ``integrator``,
+        Coordinates, every metric (:data:`schedforge.metrics.METRICS`),
+        ``status``, ``message``, ``integrator``,
         ``stats_json`` (with the point's own warnings under ``"warnings"``),
         ``warnings`` (the same, joined by :data:`WARNING_SEPARATOR`), ``wall_s``,
         ``schedforge_version``, ``computed_at``, ``worker``.

@@ -2,10 +2,9 @@
 
 Each finished point is committed at once to ``DIR/sweep.sqlite``; rerunning the
 same command after a crash, Ctrl-C or ``kill -9`` computes only the missing points.
-``DIR/points.csv`` is regenerated from the store at the end.  When the analysis
-module provides ``analyse_sweep_dir(out_dir, spec)``, it is called after a
-complete sweep to add the fits and the report to ``DIR`` (not with
-``--points-only``, which moves an older study's fits and report to
+``DIR/points.csv`` is regenerated from the store at the end.  After a complete
+sweep :func:`schedforge.report.analyse_sweep_dir` adds the fits and the report to
+``DIR`` (not with ``--points-only``, which moves an older study's fits and report to
 ``DIR/archive/`` instead, so that they never sit beside points they were not
 made from).
 
@@ -99,10 +98,20 @@ def _executor_kind(args: argparse.Namespace) -> str:
     return kind
 
 
-def _analysis_hook() -> Any:
-    from ..analysis import analyse_sweep_dir
+def _analyse(out: Path, spec: Any, *, echo: bool) -> None:
+    """Fits, plots, spec copy and report of the finished sweep; the table on stdout."""
+    from ..report import analyse_sweep_dir
 
-    return analyse_sweep_dir
+    result = analyse_sweep_dir(out, spec)
+    if echo:
+        print(result.table)
+        print(f"wrote {result.fit_csv}")
+        print(f"wrote {result.report_html}")
+
+
+def _analysis_hook() -> Any:
+    """What runs after a complete sweep (a seam for tests)."""
+    return _analyse
 
 
 def run(args: argparse.Namespace) -> int:
@@ -177,7 +186,6 @@ def _run_locked(args: argparse.Namespace, spec: Any, kind: str, out: Path) -> in
             "computes them again)",
             file=sys.stderr,
         )
-    hook = None if args.points_only else _analysis_hook()
-    if hook is not None:
-        hook(out, spec, echo=not args.quiet)
+    if not args.points_only:
+        _analysis_hook()(out, spec, echo=not args.quiet)
     return 0

@@ -17,6 +17,7 @@ from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
 from ..error_law import NO_K_END_FAMILIES
+from ..metrics import METRICS
 from ..schedules import Schedule
 
 __all__ = [
@@ -29,7 +30,7 @@ __all__ = [
 
 
 #: Error metrics that cannot exceed 1 (predicted lines are not drawn above it).
-BOUNDED_METRICS: frozenset[str] = frozenset({"trace_distance", "ground_infidelity"})
+BOUNDED_METRICS: frozenset[str] = frozenset(m.name for m in METRICS.values() if m.bounded)
 
 
 def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
@@ -146,7 +147,8 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     if t_lim is not None:
         ax.set_xlim(*t_lim)
     ax.set_xlabel("tf (ns)")
-    ax.set_ylabel(fit.metric.replace("_", " "))
+    known = METRICS.get(fit.metric)
+    ax.set_ylabel(known.heading if known else fit.metric.replace("_", " "))
     ax.set_title(f"{_label(fit)}: {fit.verdict}", fontsize=10)
     ax.grid(alpha=0.3, which="both")
     _legend_below(ax)
