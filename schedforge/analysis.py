@@ -75,7 +75,6 @@ from numpy.typing import ArrayLike, NDArray
 from .error_law import (
     CLOSED,
     COEFFICIENT_RTOL,
-    NO_K_END_FAMILIES,
     OPEN,
     RELAXATION_FACTOR,
     ErrorLaw,
@@ -84,6 +83,7 @@ from .error_law import (
 )
 from .fileio import atomic_write
 from .metrics import METRICS
+from .schedules import FAMILIES, Schedule
 
 __all__ = [
     "DEFAULT_FLOOR_FACTOR",
@@ -806,8 +806,9 @@ def _num(v: float, fmt: str) -> str:
 
 def _k(fit: ScalingFit, k: float, *, end: bool = True) -> str:
     """A flatness order for a table: "-" where the family has no such k."""
-    none = fit.family in NO_K_END_FAMILIES if end else fit.family == "linear"
-    return "-" if none else f"{k:g}"
+    traits = FAMILIES.get(fit.family, Schedule)
+    shown = traits.k_end_varies if end else traits.has_k
+    return f"{k:g}" if shown else "-"
 
 
 def format_fit_table(fits: Sequence[ScalingFit]) -> str:

@@ -626,21 +626,21 @@ def _noise(data: dict[str, Any]) -> NoiseSpec | None:
 
 
 def _check_schedules(spec: Spec) -> None:
-    """Build the spec's schedule, and every sweep variant, to apply each family's own rules."""
-    from .schedules import schedule_from_spec
+    """Build the spec's schedule, and every schedule of the sweep, to apply each family's
+    own rules (the sweep's schedules from :func:`schedforge.schedules.schedule_grid`)."""
+    from .schedules import schedule_from_spec, schedule_grid
 
     schedule_from_spec(spec.schedule)
     if spec.sweep is None:
         return
-    for family in spec.sweep.family or (spec.schedule.family,):
-        for k_end in spec.sweep.k_end or (spec.schedule.k_end,):
-            variant = spec.with_schedule(family=family, k_end=k_end)
-            try:
-                schedule_from_spec(variant.schedule)
-            except InputError as err:
-                raise InputError(
-                    err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end})"
-                ) from None
+    for family, k_start, k_end in schedule_grid(spec):
+        variant = spec.with_schedule(family=family, k_start=k_start, k_end=k_end)
+        try:
+            schedule_from_spec(variant.schedule)
+        except InputError as err:
+            raise InputError(
+                err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end:g})"
+            ) from None
 
 
 # ---------------------------------------------------------------------------

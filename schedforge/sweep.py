@@ -39,11 +39,11 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
-from .error_law import NO_K_END_FAMILIES
 from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
+from .schedules import FAMILIES, Schedule, schedule_grid
 from .spec_model import (
     BathSpec,
     DeviceSpec,
@@ -84,8 +84,6 @@ __all__ = [
 VARIANTS = ("ideal", "realized")
 #: Status of a row that carries an input error instead of a result (never stored).
 INPUT_ERROR = "input-error"
-#: Families whose k orders mean nothing (recorded as 0).
-_NO_K_FAMILIES = frozenset({"linear"})
 
 
 @dataclass(frozen=True, order=True)
@@ -124,7 +122,8 @@ class SweepPoint:
 
     def label(self) -> str:
         """Short text, e.g. ``"beta k=0/2 tf=100 ns"`` (``" realized"`` appended)."""
-        k = "" if self.family in _NO_K_FAMILIES else f" k={self.k_start:g}/{self.k_end:g}"
+        has_k = FAMILIES.get(self.family, Schedule).has_k
+        k = f" k={self.k_start:g}/{self.k_end:g}" if has_k else ""
         v = "" if self.variant == "ideal" else f" {self.variant}"
         return f"{self.family}{k} tf={self.tf_ns:g} ns{v}"
 
@@ -139,9 +138,10 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
 
     Families default to ``[spec.schedule.family]``, k_end to ``[spec.schedule.k_end]``
     and tf_ns to ``[spec.schedule.tf_ns]`` (so a spec without ``[sweep]`` gives one
-    point); k_start is ``spec.schedule.k_start``.  ``linear`` gives one point per
-    tf with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its
-    end is flat to every order whatever k_end).  With a ``[waveform]`` section every
+    point); k_start is ``spec.schedule.k_start``.  The schedules come from
+    :func:`schedforge.schedules.schedule_grid`: ``linear`` gives one point per tf
+    with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its end
+    is flat to every order whatever k_end).  With a ``[waveform]`` section every
     point has a ``"realized"`` twin.
 
     Parameters
@@ -153,24 +153,17 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
     list of SweepPoint
     """
     grid = spec.sweep
-    sched = spec.schedule
-    families = (grid.family if grid and grid.family else None) or (sched.family,)
-    k_ends = (grid.k_end if grid and grid.k_end else None) or (sched.k_end,)
-    tfs = (grid.tf_ns if grid and grid.tf_ns else None) or (sched.tf_ns,)
+    tfs = (grid.tf_ns if grid and grid.tf_ns else None) or (spec.schedule.tf_ns,)
+    for tf in tfs:
+        if not (isinstance(tf, int | float) and math.isfinite(tf) and tf > 0):
+            raise InputError("sweep.tf_ns", f"must hold numbers > 0, got {tf!r}")
     variants = VARIANTS if spec.waveform is not None else ("ideal",)
-    points = set()
-    for family in families:
-        for k_end in k_ends:
-            for tf in tfs:
-                if not (isinstance(tf, int | float) and math.isfinite(tf) and tf > 0):
-                    raise InputError("sweep.tf_ns", f"must hold numbers > 0, got {tf!r}")
-                for variant in variants:
-                    if family in _NO_K_FAMILIES:
-                        points.add(SweepPoint(family, 0.0, 0.0, tf, variant=variant))
-                    elif family in NO_K_END_FAMILIES:  # k_end has no effect: once per tf
-                        points.add(SweepPoint(family, sched.k_start, 0.0, tf, variant=variant))
-                    else:
-                        points.add(SweepPoint(family, sched.k_start, k_end, tf, variant=variant))
+    points = {
+        SweepPoint(family, k_start, k_end, tf, variant=variant)
+        for family, k_start, k_end in schedule_grid(spec)
+        for tf in tfs
+        for variant in variants
+    }
     return sorted(points)
 
 
