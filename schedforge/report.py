@@ -21,7 +21,6 @@ Every file is written atomically.
 from __future__ import annotations
 
 import base64
-import dataclasses
 import html
 import io
 import math
@@ -56,6 +55,7 @@ from .plotting.scaling import (
 )
 from .prediction import Prediction, predicted_coefficient
 from .schedules import schedule_for_point
+from .spec import spec_to_toml
 from .spec_model import Spec
 from .store import POINTS_CSV_NAME, read_points_csv
 from .units import GHZ_TO_RAD_PER_NS
@@ -64,9 +64,7 @@ __all__ = [
     "CAUTION",
     "SweepAnalysis",
     "analyse_sweep_dir",
-    "load_sweep_spec",
     "render_noise_report",
-    "spec_to_toml",
     "write_report",
 ]
 
@@ -113,54 +111,9 @@ class SweepAnalysis:
     table: str
 
 
-# -- spec copy -------------------------------------------------------------------
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "nan"
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-def spec_to_toml(spec: Spec) -> str:
-    """The spec as TOML text that :func:`schedforge.spec.load_spec` reads back.
-
-    Fields that are ``None`` (no such limit / section) are omitted.
-    """
-    data = dataclasses.asdict(spec)
-    lines = [
-        f"# spec copy written by schedforge {__version__}"
-        + (f" (from {spec.source})" if spec.source else ""),
-        f"version = {int(data['version'])}",
-    ]
-    for section in ("device", "problem", "bath", "schedule", "initial", "numerics", "sweep",
-                    "waveform"):  # fmt: skip
-        table = data.get(section)
-        if table is None:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        for key, value in table.items():
-            if value is None:
-                continue
-            if section == "sweep" and isinstance(value, list | tuple) and not value:
-                continue
-            lines.append(f"{key} = {_toml_value(value)}")
-    return "\n".join(lines) + "\n"
-
-
-def load_sweep_spec(out_dir: str | Path) -> Spec:
-    """The spec saved in a sweep folder (``DIR/spec.toml``)."""
+# -- the study's spec -------------------------------------------------------------
+def _spec_copy(out_dir: str | Path) -> Spec:
+    """The spec a sweep folder keeps beside its points (``DIR/spec.toml``)."""
     from .spec import load_spec
 
     path = Path(out_dir) / SPEC_NAME
@@ -500,7 +453,7 @@ def analyse_sweep_dir(
     say = progress or (lambda _m: None)
     folder = Path(out_dir)
     if spec is None:
-        spec = load_sweep_spec(folder)
+        spec = _spec_copy(folder)
     if rows is None:
         rows = read_points_csv(folder / POINTS_CSV_NAME)
     rows = [dict(r) for r in rows]

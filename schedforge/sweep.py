@@ -44,17 +44,8 @@ from .executors import Executor, TaskLost, make_executor
 from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
 from .schedules import FAMILIES, Schedule, schedule_grid
-from .spec_model import (
-    BathSpec,
-    DeviceSpec,
-    InitialSpec,
-    NumericsSpec,
-    ProblemSpec,
-    ScheduleSpec,
-    Spec,
-    SweepSpec,
-    WaveformSpec,
-)
+from .spec import spec_from_dict
+from .spec_model import Spec
 from .store import (
     POINTS_CSV_NAME,
     STORE_NAME,
@@ -73,11 +64,11 @@ __all__ = [
     "SweepPoint",
     "failed_columns",
     "format_summary",
-    "load_sweep_spec",
     "point_key",
     "result_columns",
     "run_point",
     "run_sweep",
+    "spec_from_store",
     "sweep_points",
 ]
 
@@ -544,25 +535,7 @@ def run_sweep(
     )
 
 
-def _tuplify(value: Any) -> Any:
-    if isinstance(value, list):
-        return tuple(_tuplify(v) for v in value)
-    return value
-
-
-_SECTIONS: dict[str, type] = {
-    "device": DeviceSpec,
-    "problem": ProblemSpec,
-    "bath": BathSpec,
-    "schedule": ScheduleSpec,
-    "initial": InitialSpec,
-    "numerics": NumericsSpec,
-    "sweep": SweepSpec,
-    "waveform": WaveformSpec,
-}
-
-
-def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
+def spec_from_store(out_dir: str | os.PathLike[str]) -> Spec:
     """The spec of the latest run recorded in ``out_dir/sweep.sqlite``.
 
     For tools that work on a finished sweep folder (analysis, report).  The
@@ -589,14 +562,7 @@ def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
         physics_hash = store.physics_hash
     if not runs:
         raise InputError(str(path), "records no sweep run (no spec to read)")
-    data = json.loads(runs[-1]["spec_json"])
-    kwargs = {
-        name: None
-        if data.get(name) is None
-        else cls(**{k: _tuplify(v) for k, v in data[name].items()})
-        for name, cls in _SECTIONS.items()
-    }
-    spec = Spec(version=data["version"], source=data.get("source"), **kwargs)
+    spec = spec_from_dict(json.loads(runs[-1]["spec_json"]))
     if spec.physics_hash() != physics_hash:
         raise InputError(str(path), "holds a spec that does not match its physics hash (corrupt?)")
     return spec
