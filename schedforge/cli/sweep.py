@@ -20,10 +20,9 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from ..errors import InputError
-from ..executors import EXECUTOR_KINDS, make_executor
+from ..executors import make_executor
 from ..store import POINTS_CSV_NAME, STUDY_OUTPUTS, archive_outputs, folder_lock
-from .options import add_spec_argument, check_output_dir, positive_int
+from .options import add_executor_arguments, add_spec_argument, check_output_dir, executor_kind
 
 __all__ = ["register", "run"]
 
@@ -43,30 +42,7 @@ def register(subparsers: Any) -> None:
     )
     add_spec_argument(p)
     p.add_argument("--out", required=True, metavar="DIR", help="sweep folder (created if needed)")
-    p.add_argument(
-        "--executor",
-        choices=EXECUTOR_KINDS,
-        default=None,
-        help="where points run: serial, local processes (default) or dask",
-    )
-    p.add_argument(
-        "--workers",
-        type=positive_int("--workers"),
-        metavar="N",
-        help="processes for --executor processes (default: all cores)",
-    )
-    p.add_argument(
-        "--scheduler",
-        metavar="ADDRESS",
-        help="join a running Dask scheduler (tcp://host:8786); its workers need the same "
-        "schedforge version installed",
-    )
-    p.add_argument(
-        "--dask-local",
-        type=positive_int("--dask-local"),
-        metavar="N",
-        help="start a Dask LocalCluster with N workers",
-    )
+    add_executor_arguments(p)
     p.add_argument(
         "--fresh",
         action="store_true",
@@ -87,15 +63,6 @@ def register(subparsers: Any) -> None:
     )
     p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(handler=run)
-
-
-def _executor_kind(args: argparse.Namespace) -> str:
-    uses_dask = args.scheduler is not None or args.dask_local is not None
-    kind = args.executor or ("dask" if uses_dask else "processes")
-    if uses_dask and kind != "dask":
-        option = "--scheduler" if args.scheduler is not None else "--dask-local"
-        raise InputError(option, f"needs --executor dask, not --executor {kind}")
-    return kind
 
 
 def _analyse(out: Path, spec: Any, *, echo: bool) -> None:
@@ -124,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
     """
     from ..spec import load_spec
 
-    kind = _executor_kind(args)
+    kind = executor_kind(args)
     out = check_output_dir(args.out, "--out")
     spec = load_spec(args.spec)
     out.mkdir(parents=True, exist_ok=True)
