@@ -70,7 +70,6 @@ __all__ = [
     "draw_errors",
     "ensemble_points",
     "intended_ground_probability",
-    "noise_from_json",
     "noise_physics_hash",
     "noisy_spec",
     "parse_variant",
@@ -565,19 +564,6 @@ class NoiseSweepOutcome:
     per_draw: list[dict[str, Any]]
     per_schedule: list[dict[str, Any]]
     files: dict[str, Path]
-
-
-def noise_from_json(data: Mapping[str, Any]) -> NoiseSpec:
-    """The ``[noise]`` section a run recorded (``dataclasses.asdict``, read back from JSON)."""
-    from .spec_model import ProblemFamilySpec
-
-    fields = {k: tuple(v) if isinstance(v, list) else v for k, v in data.items()}
-    problems = fields.pop("problems", None)
-    if problems is not None:
-        problems = ProblemFamilySpec(
-            **{k: tuple(v) if isinstance(v, list) else v for k, v in problems.items()}
-        )
-    return NoiseSpec(**fields, problems=problems)
 
 
 def tabulate_ensemble(

@@ -334,12 +334,11 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
     InputError
         An ensemble whose points are not all stored (rerun noise-sweep).
     """
-    import dataclasses
-
     from .errors import InputError
-    from .noise_ensemble import ensemble_points, noise_from_json, noise_physics_hash
+    from .noise_ensemble import ensemble_points, noise_physics_hash
+    from .spec import spec_from_dict
     from .store import STORE_NAME, PointStore
-    from .sweep import point_key, spec_from_json
+    from .sweep import point_key
 
     path = Path(folder) / STORE_NAME
     with PointStore(path) as store:
@@ -349,7 +348,7 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
         data = json.loads(runs[-1]["spec_json"])
         if not data.get("noise"):
             return None
-        spec = dataclasses.replace(spec_from_json(data), noise=noise_from_json(data["noise"]))
+        spec = spec_from_dict(data)
         if noise_physics_hash(spec) != store.physics_hash:
             return None
         keys = [point_key(store.physics_hash, p) for p in ensemble_points(spec)]
