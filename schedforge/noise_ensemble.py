@@ -203,7 +203,8 @@ class ScaledCurves(DeviceCurves):
 
 
 #: Memory (bytes) for the systems of recent draws kept in each process; a system
-#: holds about 16 d^2 bytes of matrices.  Our choice: small against a worker's memory.
+#: holds at most 16 d^2 (n + 2) bytes of matrices (H(s)'s two parts and one coupling
+#: operator per qubit).  Our choice: small against a worker's memory.
 DRAW_SYSTEM_CACHE_BYTES = 256 * 2**20
 #: At most this many draw systems per process.
 DRAW_SYSTEM_CACHE_MAX = 1024
@@ -252,7 +253,7 @@ def draw_system(spec: Spec, draw: int) -> Any:
             _draw_systems.move_to_end(key)
             return system
     system = _build_draw_system(spec, int(draw))
-    room = DRAW_SYSTEM_CACHE_BYTES // (16 * system.dim**2 + 4096)
+    room = DRAW_SYSTEM_CACHE_BYTES // (16 * system.dim**2 * (system.hamiltonian.n_qubits + 2))
     with _draw_systems_lock:
         _draw_systems[key] = system
         while len(_draw_systems) > max(2, min(DRAW_SYSTEM_CACHE_MAX, room)):
