@@ -62,7 +62,7 @@ from numpy.typing import NDArray
 
 from . import __version__
 from .control_noise import draw_normals, noisy_problem
-from .device import DeviceCurves
+from .device import DeviceCurves, LinearCurves
 from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
@@ -89,6 +89,7 @@ __all__ = [
     "read_ensemble_rows",
     "run_ensemble_point",
     "run_noise_sweep",
+    "scale_curves",
     "summarize_ensemble",
     "tabulate_ensemble",
     "write_ensemble_tables",
@@ -202,6 +203,14 @@ class ScaledCurves(DeviceCurves):
         }
 
 
+def scale_curves(curves: DeviceCurves, factor_A: float, factor_B: float) -> DeviceCurves:
+    """``curves`` with A, B scaled: linear curves as linear curves with A0, B0 scaled
+    (no cost per evaluation), any other curves wrapped in :class:`ScaledCurves`."""
+    if type(curves) is LinearCurves:
+        return LinearCurves(curves.A0_ghz * factor_A, curves.B0_ghz * factor_B)
+    return ScaledCurves(curves, factor_A, factor_B)
+
+
 #: Memory (bytes) for the systems of recent draws kept in each process; a system
 #: holds at most 16 d^2 (n + 2) bytes of matrices (H(s)'s two parts and one coupling
 #: operator per qubit).  Our choice: small against a worker's memory.
@@ -220,7 +229,7 @@ def _build_draw_system(spec: Spec, draw: int) -> Any:
     base = System.from_spec(noisy_spec(spec, draw))
     if (err.factor_A, err.factor_B) == (1.0, 1.0):
         return base
-    curves = ScaledCurves(base.hamiltonian.curves, err.factor_A, err.factor_B)
+    curves = scale_curves(base.hamiltonian.curves, err.factor_A, err.factor_B)
     # the grouping tolerance: the spec's, else the default of the scaled H (as System does)
     tol = None if spec.numerics.secular_tol_ghz is None else base.degeneracy_tol
     return System(
@@ -236,7 +245,7 @@ def draw_system(spec: Spec, draw: int) -> Any:
     """The system of draw ``draw`` (``NOMINAL``: the spec's own), shared within a process.
 
     Noisy problem (:func:`noisy_spec`), the designed curves scaled by the draw's
-    amplitude factors (:class:`ScaledCurves`), the spec's bath and initial state.
+    amplitude factors (:func:`scale_curves`), the spec's bath and initial state.
     The most recent draws' systems are kept (:data:`DRAW_SYSTEM_CACHE_BYTES`), so the
     anneals of one draw share one pre-flight.  Safe: a system is a pure function of
     (spec, draw), and its pre-flight caches only what that determines.
