@@ -66,7 +66,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
         "study",
         ("sweep", "store", "analysis", "prediction", "budget", "noise_ensemble"),
     ),
-    ("outputs", ("plotting", "report")),
+    ("outputs", ("plotting", "report", "noise_report")),
     ("command line", ("cli", "__main__")),
 )
 
