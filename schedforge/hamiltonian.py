@@ -24,7 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import sparse
 
-from .device import DeviceCurves
+from .device_curves import DeviceCurves
 from .errors import InputError
 from .units import GHZ_TO_RAD_PER_NS
 
