@@ -51,6 +51,7 @@ from .device import make_device_curves
 from .error_law import relaxation_warning
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
+from .metrics import measure, metric_values, nan_metrics
 from .schedules import Schedule, schedule_from_spec
 from .units import GHZ_TO_RAD_PER_NS, beta_from_mk
 
@@ -513,6 +514,9 @@ class SimulationResult:
         Pre-flight warnings.
     final_state : ndarray
         rho(tf) (not part of the repr or of comparisons).
+    metrics : dict
+        Every metric of :data:`schedforge.metrics.METRICS` by name (the three above
+        and any registered later).
     """
 
     tf_ns: float
@@ -530,6 +534,7 @@ class SimulationResult:
     variant: str = "ideal"
     warnings: tuple[str, ...] = ()
     final_state: NDArray[Any] | None = field(default=None, repr=False, compare=False)
+    metrics: dict[str, float] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def ok(self) -> bool:
@@ -544,9 +549,7 @@ class SimulationResult:
             "k_start": float(self.k_start),
             "k_end": float(self.k_end),
             "variant": self.variant,
-            "trace_distance": float(self.trace_distance),
-            "ground_infidelity": float(self.ground_infidelity),
-            "excess_energy_ghz": float(self.excess_energy_ghz),
+            **metric_values(self),
             "status": self.status,
             "message": self.message,
             "integrator": self.integrator,
@@ -622,21 +625,6 @@ def get_integrator(name: str, system: System) -> tuple[str, Integrator]:
 # =============================================================================
 # simulate
 # =============================================================================
-def _metrics(system: System, deviation: NDArray[Any]) -> tuple[float, float, float]:
-    """Trace distance, ground infidelity and excess energy (GHz) from rho(tf) - sigma(1)."""
-    dev = 0.5 * (deviation + deviation.conj().T)
-    trace_distance = 0.5 * float(np.sum(np.abs(np.linalg.eigvalsh(dev))))
-    eig = system.eigen(1.0)
-    ground = eig.labels == 0
-    v0 = eig.vectors[:, ground]
-    p0_dev = float(np.real(np.trace(v0.conj().T @ dev @ v0)))
-    target_excited = 1.0 - float(np.sum(eig.target_weights(system.target_beta)[ground]))
-    infidelity = target_excited - p0_dev
-    h1 = system.hamiltonian.matrix(1.0)
-    excess = float(np.real(np.sum(h1 * dev.T))) / GHZ_TO_RAD_PER_NS
-    return trace_distance, infidelity, excess
-
-
 def simulate(
     system: System,
     schedule: Schedule,
@@ -717,10 +705,7 @@ def simulate(
     name = str(outcome.stats.get("integrator", name))
     if outcome.status == "ok" and not np.all(np.isfinite(outcome.deviation)):
         outcome = replace(outcome, status="failed", message="integrator returned non-finite values")
-    if outcome.status == "ok":
-        td, inf, exc_e = _metrics(system, outcome.deviation)
-    else:
-        td = inf = exc_e = math.nan
+    values = measure(system, outcome.deviation) if outcome.status == "ok" else nan_metrics()
     stats = dict(outcome.stats)
     stats.setdefault("rtol", float(rtol))
     stats.setdefault("atol", float(atol))
@@ -730,9 +715,10 @@ def simulate(
         family=str(getattr(schedule, "family", type(schedule).__name__)),
         k_start=float(getattr(schedule, "k_start", 0)),
         k_end=float(getattr(schedule, "k_end", 0)),
-        trace_distance=td,
-        ground_infidelity=inf,
-        excess_energy_ghz=exc_e,
+        trace_distance=values["trace_distance"],
+        ground_infidelity=values["ground_infidelity"],
+        excess_energy_ghz=values["excess_energy_ghz"],
+        metrics=values,
         status=outcome.status,
         message=outcome.message if outcome.status != "ok" else "",
         integrator=name,

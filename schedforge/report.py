@@ -21,7 +21,6 @@ Every file is written atomically.
 from __future__ import annotations
 
 import base64
-import dataclasses
 import html
 import io
 import math
@@ -42,12 +41,12 @@ from .analysis import (
     ScalingFit,
     fit_points,
     format_fit_table,
-    read_points_csv,
     write_fit_csv,
 )
 from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR, dynamics_kind, law_time_scale_ns
 from .errors import InputError
 from .fileio import atomic_write_bytes, atomic_write_text
+from .metrics import METRICS, fitted_metric
 from .plotting.scaling import (
     plot_error_vs_tf,
     plot_gap,
@@ -56,16 +55,16 @@ from .plotting.scaling import (
 )
 from .prediction import Prediction, predicted_coefficient
 from .schedules import schedule_for_point
+from .spec import spec_to_toml
 from .spec_model import Spec
+from .store import POINTS_CSV_NAME, read_points_csv
 from .units import GHZ_TO_RAD_PER_NS
 
 __all__ = [
     "CAUTION",
     "SweepAnalysis",
     "analyse_sweep_dir",
-    "load_sweep_spec",
     "render_noise_report",
-    "spec_to_toml",
     "write_report",
 ]
 
@@ -112,54 +111,9 @@ class SweepAnalysis:
     table: str
 
 
-# -- spec copy -------------------------------------------------------------------
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "nan"
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-def spec_to_toml(spec: Spec) -> str:
-    """The spec as TOML text that :func:`schedforge.spec.load_spec` reads back.
-
-    Fields that are ``None`` (no such limit / section) are omitted.
-    """
-    data = dataclasses.asdict(spec)
-    lines = [
-        f"# spec copy written by schedforge {__version__}"
-        + (f" (from {spec.source})" if spec.source else ""),
-        f"version = {int(data['version'])}",
-    ]
-    for section in ("device", "problem", "bath", "schedule", "initial", "numerics", "sweep",
-                    "waveform"):  # fmt: skip
-        table = data.get(section)
-        if table is None:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        for key, value in table.items():
-            if value is None:
-                continue
-            if section == "sweep" and isinstance(value, list | tuple) and not value:
-                continue
-            lines.append(f"{key} = {_toml_value(value)}")
-    return "\n".join(lines) + "\n"
-
-
-def load_sweep_spec(out_dir: str | Path) -> Spec:
-    """The spec saved in a sweep folder (``DIR/spec.toml``)."""
+# -- the study's spec -------------------------------------------------------------
+def _spec_copy(out_dir: str | Path) -> Spec:
+    """The spec a sweep folder keeps beside its points (``DIR/spec.toml``)."""
     from .spec import load_spec
 
     path = Path(out_dir) / SPEC_NAME
@@ -174,21 +128,15 @@ def load_sweep_spec(out_dir: str | Path) -> Spec:
 
 # -- numbers for the figures ------------------------------------------------------
 def _predictions(
-    spec: Spec, keys: Sequence[tuple[str, float, float]]
+    spec: Spec, system: Any, keys: Sequence[tuple[str, float, float]]
 ) -> dict[tuple[str, float, float], Prediction]:
-    from .dynamics import System
-
-    system = System.from_spec(spec)
     out = {}
     for key in keys:
         out[key] = predicted_coefficient(system, schedule_for_point(spec, *key))
     return out
 
 
-def _gap_along_s(spec: Spec) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    from .dynamics import System
-
-    system = System.from_spec(spec)
+def _gap_along_s(system: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     s = np.linspace(0.0, 1.0, GAP_POINTS)
     spectral = []
     for si in s:
@@ -207,7 +155,10 @@ def _png(fig: Figure) -> bytes:
 
 
 def _make_figures(
-    spec: Spec, fits: Sequence[ScalingFit], keys: Sequence[tuple[str, float, float]]
+    spec: Spec,
+    system: Any,
+    fits: Sequence[ScalingFit],
+    keys: Sequence[tuple[str, float, float]],
 ) -> dict[str, Figure]:
     figs: dict[str, Figure] = {}
     for fit in fits:
@@ -215,7 +166,7 @@ def _make_figures(
         figs[name] = plot_error_vs_tf(fit)
     figs["local_slopes"] = plot_local_slopes(fits)
     figs["schedules"] = plot_schedule_derivatives([schedule_for_point(spec, *k) for k in keys])
-    s, spectral, lgap = _gap_along_s(spec)
+    s, spectral, lgap = _gap_along_s(system)
     figs["gap"] = plot_gap(s, spectral, lgap)
     return figs
 
@@ -272,9 +223,7 @@ _HEADERS = {
     "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>p</sup>)",
     "C_k": "C<sub>k</sub>",
     "tf_ns": "tf (ns)",
-    "trace_distance": "trace distance",
-    "ground_infidelity": "ground infidelity",
-    "excess_energy_ghz": "excess energy (GHz)",
+    **{name: html.escape(m.heading) for name, m in METRICS.items()},
     "wall_s": "wall time (s)",
 }
 _MESSAGE_COLUMNS = ("message", "warnings")
@@ -385,9 +334,8 @@ def render_report(
          "unit": f"ns^{p.k + 1}" if p.ok else "", "status": p.status, "message": p.message}
         for k, p in sorted(predictions.items())
     ]  # fmt: skip
-    point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
-                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s",
-                  "warnings"]  # fmt: skip
+    point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", *METRICS, "status",
+                  "wall_s", "warnings"]  # fmt: skip
     warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
@@ -476,7 +424,7 @@ def analyse_sweep_dir(
     spec: Spec | None = None,
     *,
     rows: Sequence[Mapping[str, Any]] | None = None,
-    metric: str = "trace_distance",
+    metric: str | None = None,
     progress: Callable[[str], None] | None = None,
     title: str = "schedforge sweep report",
     notes: Sequence[str] = (),
@@ -491,8 +439,8 @@ def analyse_sweep_dir(
         The sweep's spec; read from ``DIR/spec.toml`` when omitted.
     rows : sequence of mapping, optional
         The points; read from ``DIR/points.csv`` when omitted.
-    metric : str
-        Error column to analyse.
+    metric : str, optional
+        Error column to analyse (default: :func:`schedforge.metrics.fitted_metric`).
     progress : callable, optional
         Receives one line of text per step.
     title, notes : str
@@ -505,18 +453,18 @@ def analyse_sweep_dir(
     say = progress or (lambda _m: None)
     folder = Path(out_dir)
     if spec is None:
-        spec = load_sweep_spec(folder)
+        spec = _spec_copy(folder)
     if rows is None:
-        rows = read_points_csv(folder / "points.csv")
+        rows = read_points_csv(folder / POINTS_CSV_NAME)
     rows = [dict(r) for r in rows]
     spec_path = folder / SPEC_NAME
     atomic_write_text(spec_path, spec_to_toml(spec))
     keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
-    say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
-    predictions = _predictions(spec, keys)
     from .dynamics import System, curve_warnings
 
-    system = System.from_spec(spec)
+    system = System.from_spec(spec)  # built once: predictions, warnings, law, gap plot
+    say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
+    predictions = _predictions(spec, system, keys)
     warnings = [f"Pre-flight warning: {w}" for w in system.preflight()]
     for k_end in sorted({k[2] for k in keys}):  # tabulated device curves: data quality
         for w in curve_warnings(system.hamiltonian.curves, k_end):
@@ -527,14 +475,14 @@ def analyse_sweep_dir(
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,
-        metric=metric,
+        metric=metric or fitted_metric(),
         predicted={k: p.coefficient for k, p in predictions.items()},
         dynamics=dynamics,
         time_scale_ns=time_scale,
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")
-    figs = _make_figures(spec, fits, keys)
+    figs = _make_figures(spec, system, fits, keys)
     pngs = {name: _png(fig) for name, fig in figs.items()}
     plot_dir = folder / PLOTS_DIR
     plot_dir.mkdir(exist_ok=True)

@@ -17,8 +17,10 @@ defaults of :mod:`schedforge.spec_model`.
 from __future__ import annotations
 
 import dataclasses
+import math
 import os
 import tomllib
+import typing
 from collections.abc import Callable, Sequence
 from importlib import resources
 from pathlib import Path
@@ -59,6 +61,8 @@ __all__ = [
     "builtin_scenarios",
     "load_spec",
     "parse_spec",
+    "spec_from_dict",
+    "spec_to_toml",
 ]
 
 #: The only spec format version this release reads.
@@ -457,21 +461,21 @@ def _noise(data: dict[str, Any]) -> NoiseSpec | None:
 
 
 def _check_schedules(spec: Spec) -> None:
-    """Build the spec's schedule, and every sweep variant, to apply each family's own rules."""
-    from .schedules import schedule_from_spec
+    """Build the spec's schedule, and every schedule of the sweep, to apply each family's
+    own rules (the sweep's schedules from :func:`schedforge.schedules.schedule_grid`)."""
+    from .schedules import schedule_from_spec, schedule_grid
 
     schedule_from_spec(spec.schedule)
     if spec.sweep is None:
         return
-    for family in spec.sweep.family or (spec.schedule.family,):
-        for k_end in spec.sweep.k_end or (spec.schedule.k_end,):
-            variant = spec.with_schedule(family=family, k_end=k_end)
-            try:
-                schedule_from_spec(variant.schedule)
-            except InputError as err:
-                raise InputError(
-                    err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end})"
-                ) from None
+    for family, k_start, k_end in schedule_grid(spec):
+        variant = spec.with_schedule(family=family, k_start=k_start, k_end=k_end)
+        try:
+            schedule_from_spec(variant.schedule)
+        except InputError as err:
+            raise InputError(
+                err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end:g})"
+            ) from None
 
 
 # ---------------------------------------------------------------------------
@@ -721,3 +725,93 @@ atol = 1e-14
 # instances = 3
 # seed = 0
 """
+
+
+# ---------------------------------------------------------------------------
+# writing specs back: dict (the store's run record) and TOML (a study's spec.toml)
+# ---------------------------------------------------------------------------
+def _nested_dataclass(annotation: Any) -> type | None:
+    """The dataclass a field holds (``X`` or ``X | None``), else None."""
+    if dataclasses.is_dataclass(annotation):
+        return annotation  # type: ignore[return-value]
+    return next((a for a in typing.get_args(annotation) if dataclasses.is_dataclass(a)), None)
+
+
+def _from_plain(value: Any, annotation: Any) -> Any:
+    nested = _nested_dataclass(annotation)
+    if isinstance(value, dict) and nested is not None:
+        hints = typing.get_type_hints(nested)
+        return nested(**{k: _from_plain(v, hints.get(k)) for k, v in value.items()})
+    if isinstance(value, list):
+        return tuple(_from_plain(v, None) for v in value)
+    return value
+
+
+def spec_from_dict(data: dict[str, Any]) -> Spec:
+    """Rebuild a :class:`Spec` from :func:`dataclasses.asdict` output (e.g. read back from JSON).
+
+    For specs this package wrote itself (the store's record of a run): the values are
+    trusted, not validated again; lists become tuples and nested tables dataclasses.
+    Fields missing from an older record take their defaults.
+    """
+    hints = typing.get_type_hints(Spec)
+    sections = {
+        name: None if data.get(name) is None else _from_plain(data[name], hints[name])
+        for name in _SECTIONS
+    }
+    return Spec(version=data["version"], source=data.get("source"), **sections)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def _toml_table(name: str, table: dict[str, Any]) -> list[str]:
+    lines = ["", f"[{name}]"]
+    nested = []
+    for key, value in table.items():
+        if value is None:
+            continue
+        if name == "sweep" and isinstance(value, list | tuple) and not value:
+            continue
+        if isinstance(value, dict):
+            nested.append((key, value))
+            continue
+        lines.append(f"{key} = {_toml_value(value)}")
+    for key, value in nested:
+        lines += _toml_table(f"{name}.{key}", value)
+    return lines
+
+
+def spec_to_toml(spec: Spec) -> str:
+    """The spec as TOML text that :func:`load_spec` reads back to an equal spec.
+
+    Fields that are ``None`` (no such limit / section) and empty sweep lists are
+    omitted; nested tables (``[noise.problems]``) follow their section.
+    """
+    from . import __version__
+
+    data = dataclasses.asdict(spec)
+    lines = [
+        f"# spec copy written by schedforge {__version__}"
+        + (f" (from {spec.source})" if spec.source else ""),
+        f"version = {int(data['version'])}",
+    ]
+    for section in _SECTIONS:
+        if data.get(section) is not None:
+            lines += _toml_table(section, data[section])
+    return "\n".join(lines) + "\n"

@@ -436,3 +436,29 @@ def test_physics_hash_ignores_what_is_not_physics() -> None:
     # a float field written as an integer is the same physics (Python-built specs)
     assert Spec(bath=BathSpec(eta=1)).physics_hash() == Spec(bath=BathSpec(eta=1.0)).physics_hash()
     assert Spec(bath=BathSpec(eta=2e-4)).physics_hash() != Spec().physics_hash()
+
+
+def test_spec_writes_back_as_toml_and_dict_with_nested_noise_tables(tmp_path):
+    # spec.py owns both directions: the TOML copy a sweep folder keeps and the dict the
+    # store records must read back to an equal spec, [noise.problems] included.
+    import dataclasses
+    import json
+
+    from schedforge.spec import spec_from_dict, spec_to_toml
+
+    text = (
+        "version = 1\n[problem]\nqubits = 1\nh = [0.7]\n"
+        "[sweep]\ntf_ns = [100.0, 200.0]\nk_end = [1, 2]\n"
+        '[noise]\nlevel = 0.01\nterms = ["h"]\ndraws = 3\nlevels = [0.01, 0.02]\n'
+        '[noise.problems]\ngraph = "chain"\nsizes = [2, 3]\n'
+    )
+    path = tmp_path / "a.toml"
+    path.write_text(text)
+    spec = load_spec(path)
+    copy = tmp_path / "copy.toml"
+    copy.write_text(spec_to_toml(spec))
+    back = load_spec(copy)
+    assert dataclasses.replace(back, source=spec.source) == spec
+    assert "[noise.problems]" in copy.read_text()
+    record = json.loads(json.dumps(dataclasses.asdict(spec)))
+    assert spec_from_dict(record) == spec

@@ -15,9 +15,8 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import InputError
-from ..executors import EXECUTOR_KINDS, make_executor
-from .options import add_spec_argument, positive_int
-from .sweep import _executor_kind
+from ..executors import make_executor
+from .options import add_executor_arguments, add_spec_argument, executor_kind, positive_int
 
 __all__ = ["register", "run"]
 
@@ -40,12 +39,7 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--draws", type=positive_int("--draws"), metavar="N", help="override noise.draws"
     )
-    p.add_argument("--executor", choices=EXECUTOR_KINDS, default=None, help="as for sweep")
-    p.add_argument("--workers", type=positive_int("--workers"), metavar="N", help="as for sweep")
-    p.add_argument("--scheduler", metavar="ADDRESS", help="as for sweep (Dask scheduler)")
-    p.add_argument(
-        "--dask-local", type=positive_int("--dask-local"), metavar="N", help="as for sweep"
-    )
+    add_executor_arguments(p)
     p.add_argument("--fresh", action="store_true", help="archive an existing store, start over")
     p.add_argument("--retry-failed", action="store_true", help="recompute points not ok")
     p.add_argument("--quiet", action="store_true", help="no progress output")
@@ -125,7 +119,7 @@ def run(args: argparse.Namespace) -> int:
     from ..report import noise_figures, render_noise_report
     from ..spec import load_spec
 
-    kind = _executor_kind(args)
+    kind = executor_kind(args)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise InputError("--out", f"must be a directory, {out} is a file")

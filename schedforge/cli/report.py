@@ -44,9 +44,9 @@ def study_from_store(folder: Path) -> tuple[Any, list[dict[str, Any]]]:
         A damaged store, no run recorded, or a grid whose points are not all stored.
     """
     from ..store import STORE_NAME, PointStore
-    from ..sweep import load_sweep_spec, point_key, sweep_points
+    from ..sweep import point_key, spec_from_store, sweep_points
 
-    spec = load_sweep_spec(folder)
+    spec = spec_from_store(folder)
     with PointStore(folder / STORE_NAME) as store:
         keys = [point_key(store.physics_hash, p) for p in sweep_points(spec)]
         rows = store.rows(keys)
