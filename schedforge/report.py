@@ -64,7 +64,6 @@ __all__ = [
     "CAUTION",
     "SweepAnalysis",
     "analyse_sweep_dir",
-    "render_noise_report",
     "write_report",
 ]
 
@@ -322,8 +321,13 @@ def render_report(
     *,
     title: str = "schedforge sweep report",
     notes: Sequence[str] = (),
+    sections: Sequence[str] = (),
 ) -> str:
-    """The report as one self-contained HTML string (plots as base64 PNG)."""
+    """The report as one self-contained HTML string (plots as base64 PNG).
+
+    ``sections`` are HTML fragments of other studies of the same points (e.g. the
+    control-error section of :mod:`schedforge.noise_report`), placed first.
+    """
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     fit_cols = ["family", "variant", "k_start", "k_end", "error_law", "slope", "slope_stderr",
                 "expected_slope", "regime_tf_ns", "n_points",
@@ -350,6 +354,7 @@ def render_report(
         )
     parts.append(f'<p class="summary"><b>Points.</b> {summary}.</p>')
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    parts += list(sections)
     agrees = any(f.verdict == "agrees" for f in fits)
     parts += [
         "<h2>Scaling fits</h2>",
@@ -428,6 +433,7 @@ def analyse_sweep_dir(
     progress: Callable[[str], None] | None = None,
     title: str = "schedforge sweep report",
     notes: Sequence[str] = (),
+    sections: Sequence[str] = (),
 ) -> SweepAnalysis:
     """Fit a finished sweep folder and write fit.csv, the plots, spec.toml and report.html.
 
@@ -445,6 +451,8 @@ def analyse_sweep_dir(
         Receives one line of text per step.
     title, notes : str
         Report heading and extra paragraphs.
+    sections : sequence of str
+        HTML fragments placed first in the report (see :func:`render_report`).
 
     Returns
     -------
@@ -491,7 +499,14 @@ def analyse_sweep_dir(
         plot_paths[name] = plot_dir / f"{name}.png"
         atomic_write_bytes(plot_paths[name], data)
     text = render_report(
-        spec, fits, rows, pngs, predictions, title=title, notes=[*notes, *warnings]
+        spec,
+        fits,
+        rows,
+        pngs,
+        predictions,
+        title=title,
+        notes=[*notes, *warnings],
+        sections=sections,
     )
     report_path = write_report(folder / REPORT_NAME, text)
     say(f"analysis: wrote {report_path}")
@@ -504,127 +519,3 @@ def analyse_sweep_dir(
         plots=plot_paths,
         table=format_fit_table(fits),
     )
-
-
-# -- control errors: the noise-ensemble report (issue 17) -------------------------
-def _label_schedule(fam: str, k0: float, k1: float) -> str:
-    return fam if fam == "linear" else f"{fam} k={k0:g}/{k1:g}"
-
-
-def noise_figures(outcome: Any, precision: Any = None) -> dict[str, bytes]:
-    """PNG figures of a noise ensemble: histograms at the longest tf, spread vs tf, and
-    the probability curve of the static study (when ``precision`` is given)."""
-    from .plotting.noise import plot_ensemble_histograms, plot_flip_curve, plot_spread_vs_tf
-
-    rows = outcome.rows
-    pngs: dict[str, bytes] = {}
-    draws = [r for r in rows if r["draw"] >= 0]
-    if draws:
-        tf_max = max(r["tf_ns"] for r in draws)
-        for key, xlabel, log in (
-            ("trace_distance", "trace distance to the noisy steady state", True),
-            ("intended_ground_probability", "probability of the intended ground space", False),
-        ):
-            values: dict[str, list[float]] = {}
-            for r in draws:
-                if r["tf_ns"] == tf_max:
-                    name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-                    values.setdefault(name, []).append(r[key])
-            fig = plot_ensemble_histograms(values, f"{xlabel} (tf = {tf_max:g} ns)", log=log)
-            pngs[f"histogram_{key}"] = _png(fig)
-        nominal = {
-            (r["family"], r["k_start"], r["k_end"]): r["nominal_trace_distance"]
-            for r in outcome.per_point
-            if r["tf_ns"] == tf_max
-        }
-        relative: dict[str, list[float]] = {}
-        for r in draws:
-            ref = nominal.get((r["family"], r["k_start"], r["k_end"]), math.nan)
-            if r["tf_ns"] == tf_max and ref > 0:
-                name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-                relative.setdefault(name, []).append(r["trace_distance"] / ref - 1.0)
-        fig = plot_ensemble_histograms(
-            relative,
-            f"trace distance / noiseless - 1 (tf = {tf_max:g} ns)",
-            log=False,
-        )
-        pngs["histogram_relative_trace_distance"] = _png(fig)
-    for key, ylabel in (
-        ("trace_distance_spread", "spread (std / mean) of the trace distance"),
-        ("intended_probability_spread", "spread of the intended ground-state probability"),
-    ):
-        series: dict[str, tuple[list[float], list[float]]] = {}
-        for r in outcome.per_point:
-            name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-            tf, vals = series.setdefault(name, ([], []))
-            tf.append(r["tf_ns"])
-            vals.append(r[key])
-        pngs[f"spread_{key}"] = _png(plot_spread_vs_tf(series, ylabel))
-    if precision is not None:
-        pngs["precision_curve"] = _png(plot_flip_curve(precision))
-    return pngs
-
-
-def render_noise_report(
-    spec: Spec,
-    outcome: Any,
-    pngs: Mapping[str, bytes],
-    *,
-    notes: Sequence[str] = (),
-    title: str = "schedforge noise-ensemble report",
-) -> str:
-    """The noise-ensemble report as one self-contained HTML string.
-
-    Parameters
-    ----------
-    spec : Spec
-        With its ``[noise]`` section.
-    outcome : NoiseSweepOutcome
-        From :func:`schedforge.noise_ensemble.run_noise_sweep`.
-    pngs : mapping
-        From :func:`noise_figures`.
-    notes : sequence of str
-        Extra paragraphs (failed points, fallbacks...).
-    """
-    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    noise = spec.noise
-    model = (
-        ""
-        if noise is None
-        else (
-            f"Noise model: Gaussian errors on {', '.join(noise.terms) or 'no coefficient'} with "
-            f"standard deviation {noise.level:g} of the largest |h_i|, |J_ij|; relative "
-            f"amplitude errors of A(s) and B(s) with standard deviation "
-            f"{noise.amplitude_level:g}; {noise.draws} draws from seed {noise.seed}."
-        )
-    )
-    sched_cols = ["family", "k_start", "k_end", "expected_slope", "nominal_slope",
-                  "nominal_verdict", "draws", "fitted", "agrees", "slope_mean",
-                  "slope_std"]  # fmt: skip
-    point_cols = ["family", "k_start", "k_end", "tf_ns", "draws", "ok",
-                  "nominal_trace_distance", "trace_distance_mean", "trace_distance_std",
-                  "trace_distance_spread", "nominal_intended_probability",
-                  "intended_probability_mean", "intended_probability_std",
-                  "intended_probability_spread"]  # fmt: skip
-    parts = [
-        *_page_head(title, spec, now),
-        f"<p>{html.escape(model)}</p>",
-    ]
-    parts += [f"<p>{html.escape(n)}</p>" for n in notes]
-    parts += [
-        "<h2>Control errors: which schedule degrades least</h2>",
-        "<p>Trace distance: to the final steady state of each draw's own (noisy) "
-        "problem. Intended ground-state probability: weight of rho(tf) on the ground "
-        "space of the noiseless H(1). Spread: standard deviation over mean across the "
-        "draws whose simulation succeeded. Per draw, the trace distance against tf is "
-        "fitted like a sweep (<i>agrees</i>: the designed slope -(k_end + 1) survives "
-        "for that draw).</p>",
-        "<h3>Error slope per draw</h3>",
-        _html_table(sched_cols, outcome.per_schedule, ("family", "nominal_verdict")),
-        "<h3>Distribution per schedule and anneal time</h3>",
-        _html_table(point_cols, outcome.per_point, ("family",)),
-        "<h3>Figures</h3>",
-    ]
-    parts += [_img(name, png) for name, png in pngs.items()]
-    parts.append("</body></html>")
-    return "\n".join(parts)

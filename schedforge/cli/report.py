@@ -90,7 +90,13 @@ def run(args: argparse.Namespace) -> int:
     if not has_store and not (folder / POINTS_CSV_NAME).is_file():
         raise InputError("DIR", f"must hold {STORE_NAME} or points.csv (a sweep); none in {folder}")
     with folder_lock(folder):
-        if has_store:
+        from ..noise_report import load_noise_study, write_noise_report
+
+        noise = load_noise_study(folder) if has_store else None
+        if noise is not None:  # a noise-sweep folder: its own points and report section
+            write_points_csv(folder / POINTS_CSV_NAME, noise[1])
+            result = write_noise_report(folder, *noise)
+        elif has_store:
             spec, rows = study_from_store(folder)
             if _spec_copy_disagrees(folder, spec):
                 print(
