@@ -541,6 +541,18 @@ class SimulationResult:
         """True when the simulation succeeded."""
         return self.status == "ok"
 
+    def __repr__(self) -> str:
+        """The point, its status and its error; ``stats`` and the rest via :meth:`to_dict`."""
+        why = f", message={self.message!r}" if self.message else ""
+        notes = f", warnings={len(self.warnings)}" if self.warnings else ""
+        variant = "" if self.variant == "ideal" else f", variant={self.variant!r}"
+        return (
+            f"SimulationResult(tf_ns={self.tf_ns!r}, family={self.family!r}, "
+            f"k_start={self.k_start!r}, k_end={self.k_end!r}{variant}, status={self.status!r}"
+            f"{why}, trace_distance={self.trace_distance:.5g}, integrator={self.integrator!r}"
+            f"{notes}, ...)"
+        )
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready scalars (nan stays nan; ``final_state`` is omitted)."""
         return {
