@@ -62,7 +62,7 @@ from numpy.typing import NDArray
 
 from . import __version__
 from .control_noise import draw_normals, noisy_problem
-from .device import DeviceCurves, LinearCurves
+from .device_curves import DeviceCurves, LinearCurves
 from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
