@@ -177,7 +177,8 @@ def failed_columns(wall_s: float) -> dict[str, Any]:
 
 def _played_note(pending: Sequence[SweepPoint]) -> str:
     """The start line's note on played-waveform points, which cost far more."""
-    n = sum(1 for p in pending if p.variant == "realized")
+    # a plan's points (noise draws) name their sweep variant apart from the stored one
+    n = sum(1 for p in pending if getattr(p, "sweep_variant", p.variant) == "realized")
     if not n:
         return ""
     return (

@@ -314,7 +314,13 @@ def test_played_twins_run_under_each_draw(tmp_path: Path) -> None:
     assert sorted((p.draw, p.sweep_variant) for p in points) == [
         (NOMINAL, "ideal"), (NOMINAL, "realized"), (0, "ideal"), (0, "realized")
     ]  # fmt: skip
-    out = run_noise_sweep(spec, tmp_path / "played", "serial", progress="quiet")
+    import io
+
+    log = io.StringIO()
+    out = run_noise_sweep(
+        spec, tmp_path / "played", "serial", progress="lines", progress_stream=log
+    )
+    assert "2 of them as played" in log.getvalue()  # the start line warns of their cost
     played = {(r["draw"], r["variant"]): r for r in out.rows}
     z = np.random.default_rng(np.random.SeedSequence([9, 0])).standard_normal(3)
     by_hand = dataclasses.replace(
