@@ -749,6 +749,7 @@ def simulate_spec(
     family: str | None = None,
     k_start: float | None = None,
     variant: str = "ideal",
+    system: System | None = None,
 ) -> SimulationResult:
     """Build the system and schedule of ``spec`` and simulate one anneal.
 
@@ -763,6 +764,10 @@ def simulate_spec(
         (:func:`schedforge.waveform.realize` with the spec's ``[waveform]``); an
         unfiltered hold (piecewise constant) is propagated exactly by the
         ``"held"`` integrator.
+    system : System, optional
+        The system to simulate instead of ``System.from_spec(spec)`` (e.g. a noise
+        draw's, whose scaled curves a spec cannot express); anneals given the same
+        object share its pre-flight.
 
     The result's ``warnings`` include the data-quality warnings of tabulated
     device curves (:func:`curve_warnings`).
@@ -782,7 +787,7 @@ def simulate_spec(
 
     check_memory(spec.problem.qubits)
     check_run_cost(spec, sched_spec.tf_ns, spec.numerics.integrator, realized=variant == "realized")
-    system = System.from_spec(spec)
+    system = System.from_spec(spec) if system is None else system
     schedule = schedule_from_spec(sched_spec)
     if variant == "realized":
         if spec.waveform is None:
