@@ -332,15 +332,28 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
     Raises
     ------
     InputError
-        An ensemble whose points are not all stored (rerun noise-sweep).
+        An ensemble whose points are not all stored (rerun noise-sweep), or one
+        copied without its store (``points.csv`` lacks the per-point statistics).
     """
     from .errors import InputError
-    from .noise_ensemble import ensemble_points, noise_physics_hash
+    from .noise_ensemble import ensemble_points, noise_physics_hash, parse_variant
     from .spec import spec_from_dict
-    from .store import STORE_NAME, PointStore
+    from .store import POINTS_CSV_NAME, STORE_NAME, PointStore, read_points_csv
     from .sweep import point_key
 
     path = Path(folder) / STORE_NAME
+    if not path.exists():
+        csv_path = Path(folder) / POINTS_CSV_NAME
+        if csv_path.is_file() and any(
+            parse_variant(str(r["variant"])) is not None for r in read_points_csv(csv_path)
+        ):
+            raise InputError(
+                "DIR",
+                f"holds a noise ensemble without its store {STORE_NAME}: its report needs the "
+                "statistics kept there (points.csv lacks them); copy the folder with its store, "
+                "or rerun noise-sweep",
+            )
+        return None
     with PointStore(path) as store:
         runs = [r for r in store.runs() if r.get("spec_json")]
         if not runs:

@@ -255,6 +255,14 @@ def test_console_script_noise_sweep_writes_one_report(tmp_path: Path, write_spec
     assert proc.returncode == 0, proc.stderr
     again = (res / "report.html").read_text(encoding="utf-8")
     assert again.count("<img") == html.count("<img") and f"{np.mean(td):.4g}" in again
+    # copied without its store: refused (points.csv lacks the statistics), nothing rewritten
+    (res / "sweep.sqlite").rename(tmp_path / "elsewhere.sqlite")
+    proc = subprocess.run(
+        [*cmd, "report", "res"], cwd=tmp_path, capture_output=True, text=True, timeout=300,
+        stdin=subprocess.DEVNULL,
+    )  # fmt: skip
+    assert proc.returncode == 2 and "noise ensemble without its store" in proc.stderr
+    assert (res / "report.html").read_text(encoding="utf-8") == again
 
 
 # -- the error law of the dynamics (closed systems) ------------------------------------
