@@ -43,7 +43,7 @@ from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
-from .schedules import schedule_grid, schedule_label
+from .schedules import schedule_from_spec, schedule_grid, schedule_label
 from .spec import spec_from_dict
 from .spec_model import Spec
 from .store import (
@@ -370,15 +370,8 @@ def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
     final steady state raises :class:`~schedforge.errors.SteadyStateError`).
     Returns the system's warnings.
     """
-    from . import schedules
-
-    build = getattr(schedules, "schedule_from_spec", None)
     for fam, k0, k1 in sorted({(p.family, p.k_start, p.k_end) for p in points}):
-        sched_spec = dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1)
-        if build is not None:
-            build(sched_spec)
-        else:
-            schedules.make_schedule(fam, k_start=k0, k_end=k1)
+        schedule_from_spec(dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1))
     from . import dynamics
 
     system = dynamics.System.from_spec(spec)
