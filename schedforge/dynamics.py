@@ -27,7 +27,6 @@ Integrators are registered by name
 
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -39,9 +38,9 @@ from threadpoolctl import threadpool_limits
 from .error_law import relaxation_warning
 from .errors import InputError
 from .integrators import HELD_INTEGRATOR, IntegrationOutcome, get_integrator
+from .metrics import measure, metric_values, nan_metrics
 from .schedules import Schedule, schedule_from_spec
 from .system import System, curve_warnings
-from .units import GHZ_TO_RAD_PER_NS
 
 __all__ = ["SimulationResult", "simulate", "simulate_spec"]
 
@@ -86,6 +85,9 @@ class SimulationResult:
         Pre-flight warnings.
     final_state : ndarray
         rho(tf) (not part of the repr or of comparisons).
+    metrics : dict
+        Every metric of :data:`schedforge.metrics.METRICS` by name (the three above
+        and any registered later).
     """
 
     tf_ns: float
@@ -103,11 +105,24 @@ class SimulationResult:
     variant: str = "ideal"
     warnings: tuple[str, ...] = ()
     final_state: NDArray[Any] | None = field(default=None, repr=False, compare=False)
+    metrics: dict[str, float] = field(default_factory=dict, repr=False, compare=False)
 
     @property
     def ok(self) -> bool:
         """True when the simulation succeeded."""
         return self.status == "ok"
+
+    def __repr__(self) -> str:
+        """The point, its status and its error; ``stats`` and the rest via :meth:`to_dict`."""
+        why = f", message={self.message!r}" if self.message else ""
+        notes = f", warnings={len(self.warnings)}" if self.warnings else ""
+        variant = "" if self.variant == "ideal" else f", variant={self.variant!r}"
+        return (
+            f"SimulationResult(tf_ns={self.tf_ns!r}, family={self.family!r}, "
+            f"k_start={self.k_start!r}, k_end={self.k_end!r}{variant}, status={self.status!r}"
+            f"{why}, trace_distance={self.trace_distance:.5g}, integrator={self.integrator!r}"
+            f"{notes}, ...)"
+        )
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready scalars (nan stays nan; ``final_state`` is omitted)."""
@@ -117,9 +132,7 @@ class SimulationResult:
             "k_start": float(self.k_start),
             "k_end": float(self.k_end),
             "variant": self.variant,
-            "trace_distance": float(self.trace_distance),
-            "ground_infidelity": float(self.ground_infidelity),
-            "excess_energy_ghz": float(self.excess_energy_ghz),
+            **metric_values(self),
             "status": self.status,
             "message": self.message,
             "integrator": self.integrator,
@@ -144,21 +157,6 @@ def _jsonable(v: Any) -> Any:
 # =============================================================================
 # simulate
 # =============================================================================
-def _metrics(system: System, deviation: NDArray[Any]) -> tuple[float, float, float]:
-    """Trace distance, ground infidelity and excess energy (GHz) from rho(tf) - sigma(1)."""
-    dev = 0.5 * (deviation + deviation.conj().T)
-    trace_distance = 0.5 * float(np.sum(np.abs(np.linalg.eigvalsh(dev))))
-    eig = system.eigen(1.0)
-    ground = eig.labels == 0
-    v0 = eig.vectors[:, ground]
-    p0_dev = float(np.real(np.trace(v0.conj().T @ dev @ v0)))
-    target_excited = 1.0 - float(np.sum(eig.target_weights(system.target_beta)[ground]))
-    infidelity = target_excited - p0_dev
-    h1 = system.hamiltonian.matrix(1.0)
-    excess = float(np.real(np.sum(h1 * dev.T))) / GHZ_TO_RAD_PER_NS
-    return trace_distance, infidelity, excess
-
-
 def simulate(
     system: System,
     schedule: Schedule,
@@ -239,10 +237,7 @@ def simulate(
     name = str(outcome.stats.get("integrator", name))
     if outcome.status == "ok" and not np.all(np.isfinite(outcome.deviation)):
         outcome = replace(outcome, status="failed", message="integrator returned non-finite values")
-    if outcome.status == "ok":
-        td, inf, exc_e = _metrics(system, outcome.deviation)
-    else:
-        td = inf = exc_e = math.nan
+    values = measure(system, outcome.deviation) if outcome.status == "ok" else nan_metrics()
     stats = dict(outcome.stats)
     stats.setdefault("rtol", float(rtol))
     stats.setdefault("atol", float(atol))
@@ -252,9 +247,10 @@ def simulate(
         family=str(getattr(schedule, "family", type(schedule).__name__)),
         k_start=float(getattr(schedule, "k_start", 0)),
         k_end=float(getattr(schedule, "k_end", 0)),
-        trace_distance=td,
-        ground_infidelity=inf,
-        excess_energy_ghz=exc_e,
+        trace_distance=values["trace_distance"],
+        ground_infidelity=values["ground_infidelity"],
+        excess_energy_ghz=values["excess_energy_ghz"],
+        metrics=values,
         status=outcome.status,
         message=outcome.message if outcome.status != "ok" else "",
         integrator=name,
@@ -273,6 +269,7 @@ def simulate_spec(
     family: str | None = None,
     k_start: float | None = None,
     variant: str = "ideal",
+    system: System | None = None,
 ) -> SimulationResult:
     """Build the system and schedule of ``spec`` and simulate one anneal.
 
@@ -287,6 +284,10 @@ def simulate_spec(
         (:func:`schedforge.waveform.realize` with the spec's ``[waveform]``); an
         unfiltered hold (piecewise constant) is propagated exactly by the
         ``"held"`` integrator.
+    system : System, optional
+        The system to simulate instead of ``System.from_spec(spec)`` (e.g. a noise
+        draw's, whose scaled curves a spec cannot express); anneals given the same
+        object share its pre-flight.
 
     The result's ``warnings`` include the data-quality warnings of tabulated
     device curves (:func:`curve_warnings`).
@@ -306,7 +307,7 @@ def simulate_spec(
 
     check_memory(spec.problem.qubits)
     check_run_cost(spec, sched_spec.tf_ns, spec.numerics.integrator, realized=variant == "realized")
-    system = System.from_spec(spec)
+    system = System.from_spec(spec) if system is None else system
     schedule = schedule_from_spec(sched_spec)
     if variant == "realized":
         if spec.waveform is None:

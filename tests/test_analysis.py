@@ -22,7 +22,6 @@ from schedforge.analysis import (
     fit_scaling,
     format_fit_table,
     local_slopes,
-    read_points_csv,
     write_fit_csv,
 )
 from schedforge.errors import InputError
@@ -195,13 +194,21 @@ def test_fit_points_groups_and_csv_roundtrip(tmp_path):
 
 
 def test_read_points_csv_errors(tmp_path):
+    # The analysis reads points.csv through the store's one reader.
+    from schedforge.store import CSV_COLUMNS, read_points_csv
+
     p = tmp_path / "points.csv"
-    p.write_text("family,k_start,k_end,tf_ns,status,trace_distance\nbeta,0,1,abc,ok,1e-3\n")
+    cells = {"family": "beta", "variant": "ideal", "k_start": "0", "k_end": "1",
+             "tf_ns": "abc", "status": "ok"}  # fmt: skip
+    line = ",".join(cells.get(c, "1e-3" if c != "warnings" else "") for c in CSV_COLUMNS)
+    p.write_text(",".join(CSV_COLUMNS) + "\n" + line + "\n")
     with pytest.raises(InputError, match="line 2"):
         read_points_csv(p)
     p.write_text("family,k_start,k_end,status\nbeta,0,1,ok\n")
     with pytest.raises(InputError, match="tf_ns"):
         read_points_csv(p)
+    with pytest.raises(InputError, match="existing points"):
+        read_points_csv(tmp_path / "missing.csv")
 
 
 def test_pre_asymptotic_drift_is_not_a_disagreement():

@@ -270,10 +270,11 @@ def _with_integrator(spec, name):
 
 @pytest.mark.slow
 def test_predicted_coefficient_matches_sweep_driven_qubit(tmp_path):
-    from schedforge.analysis import fit_points, read_points_csv
+    from schedforge.analysis import fit_points
     from schedforge.prediction import predicted_coefficient
     from schedforge.spec import load_spec
     from schedforge.spec_model import SweepSpec
+    from schedforge.store import read_points_csv
     from schedforge.sweep import run_sweep
     from schedforge.system import System
 

@@ -25,7 +25,7 @@ from schedforge.errors import InputError
 from schedforge.spec import load_spec
 from schedforge.spec_model import Spec
 from schedforge.store import STORE_NAME, PointStore, archive_sweep_dir, read_points_csv
-from schedforge.sweep import load_sweep_spec
+from schedforge.sweep import spec_from_store
 
 # A small open-system study: one qubit, three anneal times (about 1 s of computing).
 STUDY_A = """version = 1
@@ -77,7 +77,7 @@ def test_report_replaces_a_foreign_spec_copy_with_the_stores(tmp_path, write_spe
     code, _, err = run_cli("report", out)
     assert code == 0, err
     assert "did not describe the study in the store" in err
-    assert load_spec(out / "spec.toml").physics_hash() == load_sweep_spec(out).physics_hash()
+    assert load_spec(out / "spec.toml").physics_hash() == spec_from_store(out).physics_hash()
 
 
 def test_lock_held_until_fit_and_report_are_written(tmp_path, write_spec, run_cli, monkeypatch):
