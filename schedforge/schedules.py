@@ -63,6 +63,7 @@ __all__ = [
     "schedule_for_point",
     "schedule_from_spec",
     "schedule_grid",
+    "schedule_label",
 ]
 
 #: Number of derivatives :meth:`Schedule.flatness` checks at an infinitely flat end.
@@ -981,6 +982,14 @@ def family_class(family: str) -> type[Schedule]:
     except (KeyError, TypeError):
         known = ", ".join(sorted(FAMILIES))
         raise InputError("schedule.family", f"must be one of {known}; got {family!r}") from None
+
+
+def schedule_label(family: str, k_start: float, k_end: float) -> str:
+    """Short text for a study's schedule: ``"beta k=0/2"``, or ``"linear"`` for a
+    family without flatness orders (names no family has are shown with their k)."""
+    if not FAMILIES.get(family, Schedule).has_k:
+        return family
+    return f"{family} k={float(k_start):g}/{float(k_end):g}"
 
 
 def schedule_grid(

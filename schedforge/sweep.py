@@ -43,7 +43,7 @@ from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
-from .schedules import FAMILIES, Schedule, schedule_grid
+from .schedules import schedule_grid, schedule_label
 from .spec import spec_from_dict
 from .spec_model import Spec
 from .store import (
@@ -113,10 +113,8 @@ class SweepPoint:
 
     def label(self) -> str:
         """Short text, e.g. ``"beta k=0/2 tf=100 ns"`` (``" realized"`` appended)."""
-        has_k = FAMILIES.get(self.family, Schedule).has_k
-        k = f" k={self.k_start:g}/{self.k_end:g}" if has_k else ""
         v = "" if self.variant == "ideal" else f" {self.variant}"
-        return f"{self.family}{k} tf={self.tf_ns:g} ns{v}"
+        return f"{schedule_label(self.family, self.k_start, self.k_end)} tf={self.tf_ns:g} ns{v}"
 
 
 def point_key(physics_hash: str, point: SweepPoint) -> str:

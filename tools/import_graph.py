@@ -8,6 +8,10 @@ Run from the repository root::
 Every ``import`` and ``from ... import`` of a schedforge module counts, at module level
 or inside a function (an import inside a function is still a dependency; it is marked
 ``(late)``). Imports under ``if TYPE_CHECKING:`` are left out: they do not run.
+
+Upward imports are edges from a module to one of a higher layer (:data:`LAYERS`, from
+the foundation up to the command line).  Imports of the package root (``from . import
+__version__``) are counted apart: the root sits on top once it re-exports the API.
 """
 
 from __future__ import annotations
@@ -17,9 +21,54 @@ import ast
 import sys
 from pathlib import Path
 
-__all__ = ["cycles", "import_graph", "main"]
+__all__ = ["LAYERS", "cycles", "import_graph", "layer_of", "main", "upward_imports"]
 
 PACKAGE = "schedforge"
+
+#: Layers from the bottom up; a module belongs to the first layer naming it or a
+#: package above it.  Our reading of the code, not a rule the package enforces.
+LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
+    ("foundation", ("errors", "units", "fileio", "progress", "executors")),
+    (
+        "model",
+        (
+            "spec_model",
+            "spec",
+            "schedules",
+            "device",
+            "device_table",
+            "hamiltonian",
+            "bath",
+            "problem_families",
+            "limits",
+            "error_law",
+            "control_noise",
+            "breakpoints",
+            "samples",
+            "waveform",
+            "metrics",
+        ),
+    ),
+    (
+        "dynamics core",
+        (
+            "davies",
+            "system",
+            "integrators.base",
+            "integrators.collocation",
+            "integrators.free_modes",
+            "integrators.sectors",
+        ),
+    ),
+    ("integrators", ("integrators",)),
+    ("simulation driver", ("dynamics",)),
+    (
+        "study",
+        ("sweep", "store", "analysis", "prediction", "budget", "noise_ensemble"),
+    ),
+    ("outputs", ("plotting", "report", "noise_report")),
+    ("command line", ("cli", "__main__")),
+)
 
 
 def _module_name(path: Path, root: Path) -> str:
@@ -125,6 +174,30 @@ def cycles(graph: dict[str, dict[str, bool]]) -> list[list[str]]:
     return sorted(found)
 
 
+def layer_of(module: str) -> int | None:
+    """Index into :data:`LAYERS` of a module (None: the package root or unknown)."""
+    name = module.removeprefix(PACKAGE + ".")
+    best: tuple[int, int] | None = None  # (length of the matched name, layer)
+    for index, (_, members) in enumerate(LAYERS):
+        for member in members:
+            if name == member or name.startswith(member + "."):
+                if best is None or len(member) > best[0]:
+                    best = (len(member), index)
+    return None if best is None else best[1]
+
+
+def upward_imports(graph: dict[str, dict[str, bool]]) -> list[tuple[str, str, bool]]:
+    """Edges (module, imported, late) into a higher layer; the package root left out."""
+    out = []
+    for module, edges in sorted(graph.items()):
+        here = layer_of(module)
+        for target, late in sorted(edges.items()):
+            there = layer_of(target)
+            if here is not None and there is not None and there > here:
+                out.append((module, target, late))
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     """Print the cycles (and optionally the edges); exit 1 when there is a cycle."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -139,6 +212,15 @@ def main(argv: list[str] | None = None) -> int:
         for module in sorted(graph):
             for target, late in sorted(graph[module].items()):
                 print(f"  {module} -> {target}{' (late)' if late else ''}")
+    unplaced = sorted(m for m in graph if m != PACKAGE and layer_of(m) is None)
+    if unplaced:
+        print(f"modules in no layer: {', '.join(unplaced)}")
+    up = upward_imports(graph)
+    print(f"{len(up)} upward import(s)")
+    for module, target, late in up:
+        print(f"  {module} -> {target}{' (late)' if late else ''}")
+    root = sorted(m for m, e in graph.items() if PACKAGE in e and m != PACKAGE)
+    print(f"{len(root)} module(s) import the package root: {', '.join(root)}")
     found = cycles(graph)
     print(f"{len(found)} cycle(s)")
     for component in found:

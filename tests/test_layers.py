@@ -1,0 +1,63 @@
+"""The package's import structure: no cycles, no imports into a higher layer.
+
+The graph is drawn from the source with :mod:`ast` by ``tools/import_graph.py``
+(every import counts, also inside functions).  Common practice, no source: a layered
+package imports only downward, so each layer can be read, tested and replaced
+without the ones above it.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def tool():
+    spec = importlib.util.spec_from_file_location(
+        "import_graph", ROOT / "tools" / "import_graph.py"
+    )
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture(scope="module")
+def graph(tool):
+    return tool.import_graph(ROOT)
+
+
+def test_the_tool_finds_a_cycle_and_an_upward_import(tool):
+    # The check itself must be able to fail: a made-up graph with both faults.
+    fake = {
+        "schedforge.analysis": {"schedforge.report": True},
+        "schedforge.report": {"schedforge.analysis": False},
+    }
+    assert tool.cycles(fake) == [["schedforge.analysis", "schedforge.report"]]
+    assert tool.upward_imports(fake) == [("schedforge.analysis", "schedforge.report", True)]
+
+
+def test_every_module_has_a_layer(tool, graph):
+    assert [m for m in graph if m != tool.PACKAGE and tool.layer_of(m) is None] == []
+
+
+def test_study_and_output_modules_are_in_no_cycle(tool, graph):
+    study = {"study", "outputs"}
+    names = [name for name, _ in tool.LAYERS]
+    for component in tool.cycles(graph):
+        layers = {names[tool.layer_of(m)] for m in component if tool.layer_of(m) is not None}
+        assert not layers & study, component
+
+
+def test_study_and_output_modules_import_only_downward(tool, graph):
+    names = [name for name, _ in tool.LAYERS]
+    up = [
+        edge
+        for edge in tool.upward_imports(graph)
+        if names[tool.layer_of(edge[0])] in {"model", "study", "outputs"}
+    ]
+    assert up == []
