@@ -25,10 +25,10 @@ __all__ = ["LAYERS", "cycles", "import_graph", "layer_of", "main", "upward_impor
 
 PACKAGE = "schedforge"
 
-#: Layers from the bottom up; a module belongs to the first layer naming it or a
-#: package above it.  Our reading of the code, not a rule the package enforces.
+#: Layers from the bottom up; a module belongs to the layer of the longest entry
+#: naming it or a package above it.  Our reading of the code, not a rule the package enforces.
 LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
-    ("foundation", ("errors", "units", "fileio", "progress", "executors")),
+    ("foundation", ("errors", "units", "fileio", "progress", "executors", "checks")),
     (
         "model",
         (
@@ -36,6 +36,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
             "spec",
             "schedules",
             "device",
+            "device_curves",
             "device_table",
             "hamiltonian",
             "bath",
