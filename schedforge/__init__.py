@@ -37,7 +37,7 @@ _EXPORTS: dict[str, str] = {
     "NoiseSpec": "spec_model",
     "InputError": "errors",
     # the system
-    "System": "dynamics",
+    "System": "system",
     "AnnealingHamiltonian": "hamiltonian",
     "make_device_curves": "device",
     "make_bath": "bath",
@@ -124,7 +124,7 @@ if TYPE_CHECKING:  # what static checkers and editors see; at run time, __getatt
     from .breakpoints import design_breakpoints
     from .budget import BudgetPlan, plan_budget
     from .device import make_device_curves
-    from .dynamics import SimulationResult, System, simulate, simulate_spec
+    from .dynamics import SimulationResult, simulate, simulate_spec
     from .errors import InputError
     from .executors import make_executor
     from .hamiltonian import AnnealingHamiltonian
@@ -145,6 +145,7 @@ if TYPE_CHECKING:  # what static checkers and editors see; at run time, __getatt
         WaveformSpec,
     )
     from .sweep import SweepOutcome, SweepPoint, run_sweep, sweep_points
+    from .system import System
     from .waveform import RealizedWaveform, played_samples, realize
 
 

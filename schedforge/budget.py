@@ -252,7 +252,8 @@ def plan_budget(
         raise InputError("--error", f"must be a number in (0, 1), got {eps!r}")
     if confirm < 0:
         raise InputError("--confirm", f"must be an integer >= 0, got {confirm!r}")
-    from .dynamics import System, simulate_spec
+    from .dynamics import simulate_spec
+    from .system import System
 
     say = progress or (lambda _msg: None)
     system = System.from_spec(spec)

@@ -12,7 +12,11 @@ with M the largest |h_i|, |J_ij| and the z of draw d from
 ``default_rng(SeedSequence([seed, d]))`` (:func:`schedforge.control_noise.draw_normals`:
 the same h, J errors as draw d of ``schedforge precision``), so a draw is the same
 whichever executor runs it.  The amplitude errors are constant in s (a miscalibrated
-gain); they need ``device.curves = "linear"``.
+gain) and apply to any device curves, linear or tabulated (:class:`ScaledCurves`).
+
+A draw's system (:func:`draw_system`: noisy problem, scaled curves, the spec's bath) is
+built once per process and shared by every anneal of that draw, so its pre-flight (the
+steady-state check and the gap scan) runs once per draw, not once per point.
 
 Per point the store keeps the trace distance to the *noisy* problem's own final
 steady state and, in ``stats_json["noise"]``, the probability of the *intended*
@@ -37,13 +41,16 @@ its noisy system, stored with each point).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import math
 import os
 import socket
+import threading
 import time
 import traceback
+from collections import OrderedDict
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -51,23 +58,29 @@ from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from . import __version__
 from .control_noise import draw_normals, noisy_problem
+from .device_curves import DeviceCurves, LinearCurves
 from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
 from .spec_model import NoiseSpec, Spec
 
 __all__ = [
+    "DRAW_SYSTEM_CACHE_BYTES",
+    "DRAW_SYSTEM_CACHE_MAX",
     "NOMINAL",
     "REALIZED_SUFFIX",
     "TABLE_FILES",
     "DrawErrors",
     "EnsemblePoint",
     "NoiseSweepOutcome",
+    "ScaledCurves",
     "check_draws",
     "draw_errors",
+    "draw_system",
     "ensemble_points",
     "intended_ground_probability",
     "noise_physics_hash",
@@ -76,6 +89,7 @@ __all__ = [
     "read_ensemble_rows",
     "run_ensemble_point",
     "run_noise_sweep",
+    "scale_curves",
     "summarize_ensemble",
     "tabulate_ensemble",
     "write_ensemble_tables",
@@ -131,33 +145,129 @@ def draw_errors(spec: Spec, draw: int) -> DrawErrors:
 
 
 def noisy_spec(spec: Spec, draw: int) -> Spec:
-    """The spec of draw ``draw``: programmed problem and device curves with their errors.
+    """The spec of draw ``draw`` with its programmed (noisy) problem h', J'.
+
+    The draw's amplitude errors are not in it (a spec cannot scale tabulated curves):
+    :func:`draw_system` applies them.
 
     Raises
     ------
     InputError
-        Amplitude errors on tabulated device curves (not supported), or a draw
-        whose amplitude factor is not positive.
+        A draw whose amplitude factor is not positive.
     """
     err = draw_errors(spec, draw)
-    device = spec.device
-    if (err.factor_A, err.factor_B) != (1.0, 1.0):
-        if device.curves != "linear":
-            raise InputError(
-                "noise.amplitude_level",
-                'needs device.curves = "linear" (amplitude errors of tabulated curves are '
-                "not supported); set it to 0 for these curves",
-            )
-        if err.factor_A <= 0 or err.factor_B <= 0:
-            raise InputError(
-                "noise.amplitude_level",
-                f"gives draw {draw} a non-positive amplitude factor "
-                f"(A x {err.factor_A:.3g}, B x {err.factor_B:.3g}); lower it",
-            )
-        device = dataclasses.replace(
-            device, A0_ghz=device.A0_ghz * err.factor_A, B0_ghz=device.B0_ghz * err.factor_B
+    if err.factor_A <= 0 or err.factor_B <= 0:
+        raise InputError(
+            "noise.amplitude_level",
+            f"gives draw {draw} a non-positive amplitude factor "
+            f"(A x {err.factor_A:.3g}, B x {err.factor_B:.3g}); lower it",
         )
-    return dataclasses.replace(spec, problem=err.problem.to_spec(), device=device)
+    return dataclasses.replace(spec, problem=err.problem.to_spec())
+
+
+class ScaledCurves(DeviceCurves):
+    """Device curves with relative amplitude errors: A'(s) = a A(s), B'(s) = b B(s).
+
+    Any curves (linear or tabulated): every derivative is scaled by the same factor.
+    The data-quality checks of a table (:meth:`smoothness_warnings`) are those of the
+    curves it scales (their thresholds are relative, so a gain does not change them).
+
+    Parameters
+    ----------
+    curves : DeviceCurves
+        The designed curves.
+    factor_A, factor_B : float
+        The gains a, b (> 0).
+    """
+
+    def __init__(self, curves: DeviceCurves, factor_A: float, factor_B: float) -> None:
+        if not (factor_A > 0 and factor_B > 0):
+            raise ValueError(f"factors must be > 0, got {factor_A!r}, {factor_B!r}")
+        self.curves = curves
+        self.factors = np.array([float(factor_A), float(factor_B)])
+        self.continuity = curves.continuity
+
+    def __getattr__(self, name: str) -> Any:
+        if name in ("smoothness_warnings", "warnings"):  # tabulated curves' checks
+            return getattr(self.curves, name)
+        raise AttributeError(name)
+
+    def _derivatives(self, s: NDArray[np.float64], order: int) -> NDArray[np.float64]:
+        return self.curves.derivatives(s, order) * self.factors[:, None, None]
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            **self.curves.describe(),
+            "factor_A": float(self.factors[0]),
+            "factor_B": float(self.factors[1]),
+        }
+
+
+def scale_curves(curves: DeviceCurves, factor_A: float, factor_B: float) -> DeviceCurves:
+    """``curves`` with A, B scaled: linear curves as linear curves with A0, B0 scaled
+    (no cost per evaluation), any other curves wrapped in :class:`ScaledCurves`."""
+    if type(curves) is LinearCurves:
+        return LinearCurves(curves.A0_ghz * factor_A, curves.B0_ghz * factor_B)
+    return ScaledCurves(curves, factor_A, factor_B)
+
+
+#: Memory (bytes) for the systems of recent draws kept in each process; a system
+#: holds at most 16 d^2 (n + 2) bytes of matrices (H(s)'s two parts and one coupling
+#: operator per qubit).  Our choice: small against a worker's memory.
+DRAW_SYSTEM_CACHE_BYTES = 256 * 2**20
+#: At most this many draw systems per process.
+DRAW_SYSTEM_CACHE_MAX = 1024
+_draw_systems: OrderedDict[tuple[Spec, int], Any] = OrderedDict()
+_draw_systems_lock = threading.Lock()
+
+
+def _build_draw_system(spec: Spec, draw: int) -> Any:
+    from .hamiltonian import AnnealingHamiltonian
+    from .system import System
+
+    err = draw_errors(spec, draw)
+    base = System.from_spec(noisy_spec(spec, draw))
+    if (err.factor_A, err.factor_B) == (1.0, 1.0):
+        return base
+    curves = scale_curves(base.hamiltonian.curves, err.factor_A, err.factor_B)
+    # the grouping tolerance: the spec's, else the default of the scaled H (as System does)
+    tol = None if spec.numerics.secular_tol_ghz is None else base.degeneracy_tol
+    return System(
+        AnnealingHamiltonian(curves, base.hamiltonian.problem),
+        base.bath,
+        base.initial,
+        beta=base.beta,
+        degeneracy_tol=tol,
+    )
+
+
+def draw_system(spec: Spec, draw: int) -> Any:
+    """The system of draw ``draw`` (``NOMINAL``: the spec's own), shared within a process.
+
+    Noisy problem (:func:`noisy_spec`), the designed curves scaled by the draw's
+    amplitude factors (:func:`scale_curves`), the spec's bath and initial state.
+    The most recent draws' systems are kept (:data:`DRAW_SYSTEM_CACHE_BYTES`), so the
+    anneals of one draw share one pre-flight.  Safe: a system is a pure function of
+    (spec, draw), and its pre-flight caches only what that determines.
+
+    Raises
+    ------
+    InputError
+        Bad curves or bath, or a non-positive amplitude factor.
+    """
+    key = (spec, int(draw))
+    with _draw_systems_lock:
+        system = _draw_systems.get(key)
+        if system is not None:
+            _draw_systems.move_to_end(key)
+            return system
+    system = _build_draw_system(spec, int(draw))
+    room = DRAW_SYSTEM_CACHE_BYTES // (16 * system.dim**2 * (system.hamiltonian.n_qubits + 2))
+    with _draw_systems_lock:
+        _draw_systems[key] = system
+        while len(_draw_systems) > max(2, min(DRAW_SYSTEM_CACHE_MAX, room)):
+            _draw_systems.popitem(last=False)
+    return system
 
 
 # ---------------------------------------------------------------------------
@@ -267,12 +377,18 @@ def noise_physics_hash(spec: Spec) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
 
 
+@functools.lru_cache(maxsize=4)
+def _intended_ground_space(spec: Spec) -> NDArray[Any]:
+    """Orthonormal basis (columns) of the ground space of the noiseless H(1)."""
+    eig = draw_system(spec, NOMINAL).eigen(1.0)
+    v0 = eig.vectors[:, eig.labels == 0]
+    v0.setflags(write=False)
+    return v0
+
+
 def intended_ground_probability(spec: Spec, rho: Any) -> float:
     """tr(P_0 rho) with P_0 the ground space of the *noiseless* H(1) of ``spec``."""
-    from .dynamics import System
-
-    eig = System.from_spec(spec).eigen(1.0)
-    v0 = eig.vectors[:, eig.labels == 0]
+    v0 = _intended_ground_space(spec)
     return float(np.real(np.trace(v0.conj().T @ np.asarray(rho) @ v0)))
 
 
@@ -311,6 +427,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
         errs = draw_errors(spec, point.draw)
         result = simulate_spec(
             noisy_spec(spec, point.draw),
+            system=draw_system(spec, point.draw),
             tf_ns=point.tf_ns,
             k_end=point.k_end,
             family=point.family,
@@ -635,8 +752,6 @@ def run_noise_sweep(
         No ``[noise]`` section, amplitude errors on tabulated curves, a draw with a
         non-positive amplitude factor, or the engine's own input errors.
     """
-    import functools
-
     from .sweep import PointPlan, run_sweep
 
     check_draws(spec)

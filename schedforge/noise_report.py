@@ -154,6 +154,25 @@ def _precision_text(precision: Any) -> str:
     )
 
 
+#: Column headings of the section's tables (the CSV column names, in words).
+_LABELS = {
+    "nominal_slope": "slope without noise",
+    "nominal_verdict": "verdict without noise",
+    "fitted": "draws fitted",
+    "agrees": "draws agreeing",
+    "slope_mean": "slope mean",
+    "slope_std": "slope std",
+    "nominal_trace_distance": "trace distance without noise",
+    "trace_distance_mean": "trace distance mean",
+    "trace_distance_std": "trace distance std",
+    "trace_distance_spread": "trace distance spread",
+    "nominal_intended_probability": "intended probability without noise",
+    "intended_probability_mean": "intended probability mean",
+    "intended_probability_std": "intended probability std",
+    "intended_probability_spread": "intended probability spread",
+}
+
+
 def noise_section(
     spec: Spec,
     per_schedule: Sequence[Mapping[str, Any]],
@@ -194,7 +213,12 @@ def noise_section(
                   "trace_distance_spread", "nominal_intended_probability",
                   "intended_probability_mean", "intended_probability_std",
                   "intended_probability_spread"]  # fmt: skip
-    text_cols = ("family", "variant", "error_law", "nominal_verdict")
+    text_cols = [_LABELS.get(c, c) for c in ("family", "variant", "error_law", "nominal_verdict")]
+
+    def table(columns: Sequence[str], rows: Sequence[Mapping[str, Any]]) -> str:
+        shown = [{_LABELS.get(k, k): v for k, v in r.items()} for r in rows]
+        return _html_table([_LABELS.get(c, c) for c in columns], shown, text_cols)
+
     parts = [
         '<section id="control-errors">',
         "<h2>Control errors: which schedule degrades least</h2>",
@@ -209,9 +233,9 @@ def noise_section(
         "waveform the hardware plays, on each draw's device. The sections after this "
         "one are the sweep report of the noiseless points.</p>",
         "<h3>Error law per draw</h3>",
-        _html_table(sched_cols, per_schedule, text_cols),
+        table(sched_cols, per_schedule),
         "<h3>Distribution per schedule and anneal time</h3>",
-        _html_table(point_cols, per_point, text_cols),
+        table(point_cols, per_point),
         "<h3>Figures</h3>",
         '<div class="plots">'
         + "\n".join(_img(name, png) for name, png in pngs.items() if name != "precision_curve")
@@ -332,15 +356,28 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
     Raises
     ------
     InputError
-        An ensemble whose points are not all stored (rerun noise-sweep).
+        An ensemble whose points are not all stored (rerun noise-sweep), or one
+        copied without its store (``points.csv`` lacks the per-point statistics).
     """
     from .errors import InputError
-    from .noise_ensemble import ensemble_points, noise_physics_hash
+    from .noise_ensemble import ensemble_points, noise_physics_hash, parse_variant
     from .spec import spec_from_dict
-    from .store import STORE_NAME, PointStore
+    from .store import POINTS_CSV_NAME, STORE_NAME, PointStore, read_points_csv
     from .sweep import point_key
 
     path = Path(folder) / STORE_NAME
+    if not path.exists():
+        csv_path = Path(folder) / POINTS_CSV_NAME
+        if csv_path.is_file() and any(
+            parse_variant(str(r["variant"])) is not None for r in read_points_csv(csv_path)
+        ):
+            raise InputError(
+                "DIR",
+                f"holds a noise ensemble without its store {STORE_NAME}: its report needs the "
+                "statistics kept there (points.csv lacks them); copy the folder with its store, "
+                "or rerun noise-sweep",
+            )
+        return None
     with PointStore(path) as store:
         runs = [r for r in store.runs() if r.get("spec_json")]
         if not runs:

@@ -318,7 +318,7 @@ def predict_from_generator(
 
 
 def predicted_coefficient(system: Any, schedule: Schedule, **kwargs: Any) -> Prediction:
-    """Predicted C_k for a :class:`schedforge.dynamics.System` and a schedule.
+    """Predicted C_k for a :class:`schedforge.system.System` and a schedule.
 
     Uses ``system.generator(s)`` and ``system.steady_state(s)``; a closed system
     has no steady state to relax to, and systems above :data:`MAX_DIM` levels

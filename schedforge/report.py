@@ -468,7 +468,7 @@ def analyse_sweep_dir(
     spec_path = folder / SPEC_NAME
     atomic_write_text(spec_path, spec_to_toml(spec))
     keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
-    from .dynamics import System, curve_warnings
+    from .system import System, curve_warnings
 
     system = System.from_spec(spec)  # built once: predictions, warnings, law, gap plot
     say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")

@@ -43,7 +43,7 @@ from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
 from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
-from .schedules import schedule_grid, schedule_label
+from .schedules import schedule_from_spec, schedule_grid, schedule_label
 from .spec import spec_from_dict
 from .spec_model import Spec
 from .store import (
@@ -177,7 +177,8 @@ def failed_columns(wall_s: float) -> dict[str, Any]:
 
 def _played_note(pending: Sequence[SweepPoint]) -> str:
     """The start line's note on played-waveform points, which cost far more."""
-    n = sum(1 for p in pending if p.variant == "realized")
+    # a plan's points (noise draws) name their sweep variant apart from the stored one
+    n = sum(1 for p in pending if getattr(p, "sweep_variant", p.variant) == "realized")
     if not n:
         return ""
     return (
@@ -369,21 +370,13 @@ def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
     final steady state raises :class:`~schedforge.errors.SteadyStateError`).
     Returns the system's warnings.
     """
-    from . import schedules
-
-    build = getattr(schedules, "schedule_from_spec", None)
     for fam, k0, k1 in sorted({(p.family, p.k_start, p.k_end) for p in points}):
-        sched_spec = dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1)
-        if build is not None:
-            build(sched_spec)
-        else:
-            schedules.make_schedule(fam, k_start=k0, k_end=k1)
-    from . import dynamics
+        schedule_from_spec(dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1))
+    from .integrators import get_integrator
+    from .system import System
 
-    system = dynamics.System.from_spec(spec)
-    resolve = getattr(dynamics, "get_integrator", None)
-    if resolve is not None:  # an unknown integrator name is bad input
-        resolve(spec.numerics.integrator, system)
+    system = System.from_spec(spec)
+    get_integrator(spec.numerics.integrator, system)  # an unknown integrator name is bad input
     return list(system.preflight() or [])
 
 

@@ -235,7 +235,8 @@ def test_gevrey_schedule_is_super_polynomial_in_real_dynamics():
     import dataclasses
 
     from schedforge.analysis import numerical_floor
-    from schedforge.dynamics import INTEGRATORS, get_integrator, simulate_spec
+    from schedforge.dynamics import simulate_spec
+    from schedforge.integrators import INTEGRATORS, get_integrator
     from schedforge.spec import load_spec
 
     get_integrator("general", None)  # loads the built-in integrators
@@ -265,11 +266,11 @@ def test_gevrey_schedule_is_super_polynomial_in_real_dynamics():
 @pytest.fixture(scope="module")
 def driven_qubit():
     """The built-in driven qubit: spec, its final relaxation time 1/gap(1) (ns), C_k."""
-    from schedforge.dynamics import System
     from schedforge.error_law import law_time_scale_ns
     from schedforge.prediction import predicted_coefficient
     from schedforge.schedules import schedule_for_point
     from schedforge.spec import load_spec
+    from schedforge.system import System
 
     spec = load_spec("builtin:driven-qubit")
     system = System.from_spec(spec)

@@ -188,12 +188,6 @@ def test_bad_noise_input() -> None:
     with pytest.raises(InputError) as err:
         ensemble_points(parse_spec(data))
     assert err.value.field == "noise"
-    tab = dataclasses.replace(
-        make_spec(), device=dataclasses.replace(make_spec().device, curves="/nowhere.csv")
-    )
-    with pytest.raises(InputError) as err:
-        noisy_spec(tab, 0)
-    assert err.value.field == "noise.amplitude_level"
     big = make_spec(amplitude_level=0.9, draws=200)
     with pytest.raises(InputError) as err:  # some draw has 1 + 0.9 z <= 0
         from schedforge.noise_ensemble import check_draws
@@ -207,6 +201,11 @@ def test_cli_noise_sweep_errors_exit_2(run_cli, write_spec, tmp_path: Path) -> N
     out = tmp_path / "o"
     code, _, err = run_cli("noise-sweep", spec, "--out", out, "--executor", "serial")
     assert code == 2 and "`noise`" in err
+    assert not out.exists()
+    # some draw of 200 has 1 + 0.9 z <= 0: refused before anything is computed or written
+    text = "version = 1\n[sweep]\ntf_ns = [100.0]\n[noise]\namplitude_level = 0.9\n"
+    code, _, err = run_cli("noise-sweep", write_spec(text), "--out", out, "--executor", "serial")
+    assert code == 2 and "`noise.amplitude_level`" in err and "non-positive" in err
     assert not out.exists()
 
 
@@ -256,6 +255,14 @@ def test_console_script_noise_sweep_writes_one_report(tmp_path: Path, write_spec
     assert proc.returncode == 0, proc.stderr
     again = (res / "report.html").read_text(encoding="utf-8")
     assert again.count("<img") == html.count("<img") and f"{np.mean(td):.4g}" in again
+    # copied without its store: refused (points.csv lacks the statistics), nothing rewritten
+    (res / "sweep.sqlite").rename(tmp_path / "elsewhere.sqlite")
+    proc = subprocess.run(
+        [*cmd, "report", "res"], cwd=tmp_path, capture_output=True, text=True, timeout=300,
+        stdin=subprocess.DEVNULL,
+    )  # fmt: skip
+    assert proc.returncode == 2 and "noise ensemble without its store" in proc.stderr
+    assert (res / "report.html").read_text(encoding="utf-8") == again
 
 
 # -- the error law of the dynamics (closed systems) ------------------------------------
@@ -307,7 +314,13 @@ def test_played_twins_run_under_each_draw(tmp_path: Path) -> None:
     assert sorted((p.draw, p.sweep_variant) for p in points) == [
         (NOMINAL, "ideal"), (NOMINAL, "realized"), (0, "ideal"), (0, "realized")
     ]  # fmt: skip
-    out = run_noise_sweep(spec, tmp_path / "played", "serial", progress="quiet")
+    import io
+
+    log = io.StringIO()
+    out = run_noise_sweep(
+        spec, tmp_path / "played", "serial", progress="lines", progress_stream=log
+    )
+    assert "2 of them as played" in log.getvalue()  # the start line warns of their cost
     played = {(r["draw"], r["variant"]): r for r in out.rows}
     z = np.random.default_rng(np.random.SeedSequence([9, 0])).standard_normal(3)
     by_hand = dataclasses.replace(
@@ -326,3 +339,62 @@ def test_played_twins_run_under_each_draw(tmp_path: Path) -> None:
     variants = {(r["variant"], r["draw"]) for r in out.per_draw}
     assert variants == {("ideal", NOMINAL), ("ideal", 0), ("realized", NOMINAL), ("realized", 0)}
     assert {r["variant"] for r in out.per_point} == {"ideal", "realized"}
+
+
+# -- amplitude errors of tabulated device curves -----------------------------------------
+def _linear_table(path: Path) -> Path:
+    """The linear curves of BASE as a table: a quintic spline reproduces a straight line
+    exactly (a spline of degree d contains every polynomial of degree <= d: de Boor,
+    A Practical Guide to Splines, 1978), so these curves are BASE's to rounding."""
+    s = [i / 10 for i in range(11)]
+    rows = "\n".join(f"{x!r},{3.5 * (1 - x)!r},{2.5 * x!r}" for x in s)
+    path.write_text("# invented table: the linear curves of the tests\ns,A_ghz,B_ghz\n" + rows)
+    return path
+
+
+def test_amplitude_errors_of_tabulated_curves(tmp_path: Path) -> None:
+    """A draw on tabulated curves scales the interpolated A(s), B(s) by (1 + level z_A/B):
+    it equals the same noisy problem on linear curves with A0, B0 scaled by hand from
+    numpy's SeedSequence, run alone through simulate_spec."""
+    data = json.loads(json.dumps(BASE))
+    data["device"] = {"curves": str(_linear_table(tmp_path / "curves.csv"))}
+    data["sweep"]["tf_ns"] = [120.0]
+    spec = parse_spec(data)
+    out = run_noise_sweep(spec, tmp_path / "tab", "serial", progress="quiet")
+    rows = by_point(out.rows)
+    z = np.random.default_rng(np.random.SeedSequence([9, 2])).standard_normal(3)
+    linear = make_spec()
+    by_hand = dataclasses.replace(
+        linear,
+        problem=dataclasses.replace(linear.problem, h=(0.7 + 0.1 * 0.7 * z[0],)),
+        device=dataclasses.replace(
+            linear.device, A0_ghz=3.5 * (1 + 0.05 * z[1]), B0_ghz=2.5 * (1 + 0.05 * z[2])
+        ),
+    )
+    alone = simulate_spec(by_hand, tf_ns=120.0)
+    row = rows[(120.0, 2)]
+    assert row["status"] == "ok"
+    assert row["factor_A"] == pytest.approx(1 + 0.05 * z[1], rel=1e-15)
+    assert row["trace_distance"] == pytest.approx(alone.trace_distance, rel=1e-8)  # 3e-12 seen
+    nominal = simulate_spec(linear, tf_ns=120.0)
+    assert abs(row["trace_distance"] / nominal.trace_distance - 1) > 1e-3  # errors matter
+
+
+# -- each draw's system is built once --------------------------------------------------------
+def test_each_draw_builds_its_system_and_preflight_once(tmp_path: Path, monkeypatch) -> None:
+    """20 draws at 2 anneal times (more draws than any small cache of systems): every
+    draw's pre-flight runs once, not once per point."""
+    from schedforge.system import System as system_class
+
+    calls: list[int] = []
+    original = system_class._run_preflight
+
+    def counting(self):  # type: ignore[no-untyped-def]
+        calls.append(1)
+        return original(self)
+
+    monkeypatch.setattr(system_class, "_run_preflight", counting)
+    spec = make_spec(draws=20, seed=21)
+    out = run_noise_sweep(spec, tmp_path / "once", "serial", progress="quiet")
+    assert out.sweep.n_computed == 2 * 21
+    assert len(calls) <= 21 + 1  # each draw and the nominal system (+ the sweep's check)

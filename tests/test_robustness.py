@@ -139,7 +139,7 @@ def test_curves_hashed_by_content_not_path(tmp_path, write_spec):
 
 
 def test_curves_changed_after_loading_are_refused(tmp_path, write_spec):
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     path = write_spec('version = 1\n[device]\ncurves = "c.csv"\n')
     (tmp_path / "c.csv").write_text(CURVES)
@@ -210,7 +210,7 @@ def test_byte_order_mark_accepted_in_spec_and_curves(tmp_path):
     (tmp_path / "c.csv").write_bytes(b"\xef\xbb\xbf" + CURVES.encode())
     spec = tmp_path / "s.toml"
     spec.write_bytes(b'\xef\xbb\xbfversion = 1\n[device]\ncurves = "c.csv"\n')
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     assert System.from_spec(load_spec(spec)).hamiltonian.curves.s.size == 11
 
@@ -263,7 +263,7 @@ def test_lowest_temperature_is_where_beta_times_spread_reaches_1400(write_spec):
 
 
 def test_curve_values_and_all_zero_table(tmp_path, write_spec):
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     path = write_spec('version = 1\n[device]\ncurves = "c.csv"\n')
     (tmp_path / "c.csv").write_text(CURVES.replace("0.50,1.750000", "0.50,1e308"))

@@ -58,7 +58,6 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
             "integrators.base",
             "integrators.collocation",
             "integrators.free_modes",
-            "integrators.sectors",
         ),
     ),
     ("integrators", ("integrators",)),

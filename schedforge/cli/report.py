@@ -92,7 +92,7 @@ def run(args: argparse.Namespace) -> int:
     with folder_lock(folder):
         from ..noise_report import load_noise_study, write_noise_report
 
-        noise = load_noise_study(folder) if has_store else None
+        noise = load_noise_study(folder)
         if noise is not None:  # a noise-sweep folder: its own points and report section
             write_points_csv(folder / POINTS_CSV_NAME, noise[1])
             result = write_noise_report(folder, *noise)
