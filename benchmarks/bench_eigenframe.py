@@ -35,10 +35,11 @@ from pathlib import Path
 
 import numpy as np
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
+from schedforge.system import System
 
 
 def _qubit() -> System:

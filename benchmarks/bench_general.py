@@ -19,9 +19,11 @@ import platform
 import time
 from datetime import UTC, datetime
 
-from schedforge.dynamics import INTEGRATORS, System, _load_builtin_integrators, simulate
+from schedforge.dynamics import simulate
+from schedforge.integrators import INTEGRATORS
 from schedforge.schedules import make_schedule
 from schedforge.spec_model import Spec
+from schedforge.system import System
 
 
 def main() -> None:
@@ -36,7 +38,6 @@ def main() -> None:
     )
     system = System.from_spec(Spec())
     sched = make_schedule("beta", k_start=0, k_end=2)
-    _load_builtin_integrators()
     others = [name for name in ("eigenframe",) if name in INTEGRATORS]
     first = None
     for tf in args.tf:

@@ -24,13 +24,14 @@ from datetime import UTC, datetime
 
 import numpy as np
 
-from schedforge.dynamics import System, simulate_spec
+from schedforge.dynamics import simulate_spec
 from schedforge.prediction import predicted_coefficient
 from schedforge.report import analyse_sweep_dir
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import SweepSpec
 from schedforge.sweep import run_sweep
+from schedforge.system import System
 
 
 def _timed(fn, repeat=1):

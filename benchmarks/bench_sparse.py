@@ -35,10 +35,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_eigenframe import _instance
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
+from schedforge.system import System
 
 #: Invented problems with round numbers: degenerate levels, coinciding Bohr frequencies.
 PROBLEMS = {

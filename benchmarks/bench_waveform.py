@@ -97,8 +97,9 @@ def main() -> None:
         )
 
     if args.simulate:
-        from schedforge.dynamics import System, simulate
+        from schedforge.dynamics import simulate
         from schedforge.spec import load_spec
+        from schedforge.system import System
 
         spec = load_spec("builtin:driven-qubit")
         system = System.from_spec(replace(spec, bath=replace(spec.bath, eta=1e-2)))
@@ -125,8 +126,8 @@ HOLD_12_FILTERED = WaveformSpec(sample_rate_gsps=1.0, dac_bits=12, bandwidth_mhz
 
 
 def _systems():
-    from schedforge.dynamics import System
     from schedforge.spec import load_spec
+    from schedforge.system import System
 
     qubit = load_spec("builtin:driven-qubit")
     return {

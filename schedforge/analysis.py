@@ -75,15 +75,15 @@ from numpy.typing import ArrayLike, NDArray
 from .error_law import (
     CLOSED,
     COEFFICIENT_RTOL,
-    NO_K_END_FAMILIES,
     OPEN,
     RELAXATION_FACTOR,
     ErrorLaw,
     end_orders,
     error_law,
 )
-from .errors import InputError
 from .fileio import atomic_write
+from .metrics import METRICS
+from .schedules import FAMILIES, Schedule
 
 __all__ = [
     "DEFAULT_FLOOR_FACTOR",
@@ -96,7 +96,6 @@ __all__ = [
     "SUPER_POLYNOMIAL",
     "VERDICTS",
     "ScalingFit",
-    "analyse_sweep_dir",
     "detect_regime",
     "expected_slope",
     "fit_points",
@@ -105,7 +104,6 @@ __all__ = [
     "format_fit_table",
     "local_slopes",
     "numerical_floor",
-    "read_points_csv",
     "write_fit_csv",
 ]
 
@@ -147,16 +145,6 @@ FIT_COLUMNS: tuple[str, ...] = (
     "coefficient_predicted",
     "verdict",
     "message",
-)
-
-_FLOAT_COLUMNS = (
-    "k_start",
-    "k_end",
-    "tf_ns",
-    "trace_distance",
-    "ground_infidelity",
-    "excess_energy_ghz",
-    "wall_s",
 )
 
 
@@ -737,7 +725,7 @@ def fit_points(
     Parameters
     ----------
     rows : iterable of mapping
-        Points, e.g. from :func:`read_points_csv`: keys ``family``, ``variant``
+        Points, e.g. from :func:`schedforge.store.read_points_csv`: keys ``family``, ``variant``
         (default ``"ideal"``), ``k_start``, ``k_end``, ``tf_ns``, ``status`` and
         the metric column.
     atol : float
@@ -746,8 +734,8 @@ def fit_points(
         Error column to analyse.
     predicted : mapping, optional
         Predicted coefficient by ``(family, k_start, k_end)``; carried into the
-        ``ideal`` fits of the trace distance only (a realized waveform is not flat
-        as designed; C_k is a trace-distance coefficient).
+        ``ideal`` fits of a metric it predicts (``Metric.predicted``: the trace
+        distance) only (a realized waveform is not flat as designed).
     dynamics, time_scale_ns
         The law and the time scale (see :func:`fit_scaling`).
 
@@ -771,7 +759,7 @@ def fit_points(
         family, variant, k_start, k_end = key
         pts = groups[key]
         pred = math.nan
-        if predicted is not None and variant == "ideal" and metric == "trace_distance":
+        if predicted is not None and variant == "ideal" and METRICS[metric].predicted:
             pred = float(predicted.get((family, k_start, k_end), math.nan))
         fits.append(
             fit_scaling(
@@ -792,43 +780,6 @@ def fit_points(
             )
         )
     return fits
-
-
-def read_points_csv(path: str | Path) -> list[dict[str, Any]]:
-    """Read a sweep's ``points.csv`` (floats parsed; other columns kept as text).
-
-    Raises
-    ------
-    InputError
-        Missing file, missing required column or an unparsable number (naming
-        the line).
-    """
-    p = Path(path)
-    if not p.is_file():
-        raise InputError(str(p), "must be an existing points.csv file")
-    required = ("family", "k_start", "k_end", "tf_ns", "status")
-    rows: list[dict[str, Any]] = []
-    with p.open(newline="") as fh:
-        reader = csv.DictReader(line for line in fh if not line.startswith("#"))
-        cols = reader.fieldnames or []
-        for c in required:
-            if c not in cols:
-                raise InputError(f"{p.name}", f"must have a column `{c}`; found {cols}")
-        for lineno, raw in enumerate(reader, start=2):
-            row: dict[str, Any] = dict(raw)
-            for c in _FLOAT_COLUMNS:
-                if c in row and row[c] not in (None, ""):
-                    try:
-                        row[c] = float(row[c])
-                    except ValueError:
-                        raise InputError(
-                            f"{p.name}: line {lineno}", f"column `{c}` must be a number"
-                        ) from None
-                elif c in row:
-                    row[c] = math.nan
-            row.setdefault("variant", "ideal")
-            rows.append(row)
-    return rows
 
 
 def _csv_value(v: Any) -> str:
@@ -855,8 +806,9 @@ def _num(v: float, fmt: str) -> str:
 
 def _k(fit: ScalingFit, k: float, *, end: bool = True) -> str:
     """A flatness order for a table: "-" where the family has no such k."""
-    none = fit.family in NO_K_END_FAMILIES if end else fit.family == "linear"
-    return "-" if none else f"{k:g}"
+    traits = FAMILIES.get(fit.family, Schedule)
+    shown = traits.k_end_varies if end else traits.has_k
+    return f"{k:g}" if shown else "-"
 
 
 def format_fit_table(fits: Sequence[ScalingFit]) -> str:
@@ -889,25 +841,3 @@ def format_fit_table(fits: Sequence[ScalingFit]) -> str:
             f"  {f.verdict}"
         )
     return "\n".join(lines)
-
-
-def analyse_sweep_dir(out_dir: str | Path, spec: Any = None, *, echo: bool = True) -> Any:
-    """Hook the ``sweep`` command calls once the points are done.
-
-    Delegates to :func:`schedforge.report.analyse_sweep_dir` (imported here, on
-    call, so that this numerical module does not load matplotlib), which writes
-    ``DIR/fit.csv``, ``DIR/plots/``, ``DIR/spec.toml`` and ``DIR/report.html``;
-    with ``echo`` it prints the summary table and the paths on stdout.
-
-    Returns
-    -------
-    schedforge.report.SweepAnalysis
-    """
-    from .report import analyse_sweep_dir as _analyse
-
-    result = _analyse(out_dir, spec)
-    if echo:
-        print(result.table)
-        print(f"wrote {result.fit_csv}")
-        print(f"wrote {result.report_html}")
-    return result

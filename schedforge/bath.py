@@ -1,11 +1,19 @@
 """Bath spectral densities and system-bath couplings.
 
-A spectral density is any callable ``gamma(omega) -> ndarray`` taking and
-returning angular frequencies in rad/ns (vectorised).  It is the Fourier
-transform of the bath correlation function, ``gamma(omega) >= 0``, and for a
-bath in thermal equilibrium it satisfies detailed balance (the KMS condition)
+A spectral density (the :class:`SpectralDensity` protocol) is a callable
+``gamma(omega) -> ndarray`` taking and returning angular frequencies in rad/ns
+(vectorised), with two attributes: ``beta``, the inverse temperature (ns/rad) of
+its bath, and ``cutoff``, the frequency scale (rad/ns) beyond which it decays.  It
+is the Fourier transform of the bath correlation function, ``gamma(omega) >= 0``,
+and for a bath in thermal equilibrium it satisfies detailed balance (the KMS
+condition)
 
     gamma(-omega) = exp(-beta omega) gamma(omega).
+
+The kinds a spec can name (``bath.spectrum``) are registered in :data:`SPECTRA`;
+spec validation and the spec template list them from there, so a new spectral
+density is its class plus one :func:`register_spectrum` call.  The Pauli operators
+that couple each qubit to its bath (``bath.coupling``) are :data:`COUPLINGS`.
 
 The ohmic density with exponential cutoff used by default is
 
@@ -33,26 +41,65 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol, runtime_checkable
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import integrate
 
+from . import checks
 from .errors import InputError
+from .limits import MAX_ENERGY_GHZ, MIN_CUTOFF_GHZ
+from .spec_model import BathSpec
 from .units import GHZ_TO_RAD_PER_NS, beta_from_mk
 
 __all__ = [
+    "COUPLINGS",
+    "LAMB_SHIFT_DEFAULT_SCALE",
+    "SPECTRA",
     "Bath",
+    "DensityFunction",
     "OhmicSpectralDensity",
     "SpectralDensity",
+    "SpectrumKind",
+    "check_bath",
     "lamb_shift_function",
     "make_bath",
+    "register_spectrum",
     "steady_state_advice",
 ]
 
-#: A spectral density: rad/ns in, rad/ns out, vectorised.
-SpectralDensity = Callable[[NDArray[np.float64]], NDArray[np.float64]]
+
+@runtime_checkable
+class SpectralDensity(Protocol):
+    """What a bath's spectral density provides (see the module notes).
+
+    Attributes
+    ----------
+    beta : float
+        Inverse temperature (ns/rad) at which ``gamma`` satisfies detailed
+        balance, > 0; ``math.inf`` for zero temperature.  It is the bath's
+        temperature: :class:`Bath` takes it from here unless given ``beta=``.
+    cutoff : float
+        Frequency scale (rad/ns) beyond which ``gamma`` decays; it sets the
+        integration window of the Lamb shift.
+    """
+
+    @property
+    def beta(self) -> float: ...
+
+    @property
+    def cutoff(self) -> float: ...
+
+    def __call__(self, omega: ArrayLike) -> NDArray[np.float64]:
+        """gamma(omega) >= 0 (rad/ns), vectorised over ``omega`` (rad/ns)."""
+        ...
+
+
+#: A bare spectral-density function (no ``beta``, no ``cutoff``): :class:`Bath` then
+#: needs ``beta=``, and the Lamb shift integrates over :data:`LAMB_SHIFT_DEFAULT_SCALE`.
+DensityFunction = Callable[[NDArray[np.float64]], NDArray[np.float64]]
+#: Lamb-shift integration scale (rad/ns) for a density function without a ``cutoff``.
+LAMB_SHIFT_DEFAULT_SCALE = 10.0
 
 
 def _bose_factor_times_x(x: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -93,13 +140,11 @@ class OhmicSpectralDensity:
 
     def __init__(self, eta: float, cutoff_rad_per_ns: float, beta_ns: float) -> None:
         if not (np.isfinite(eta) and eta >= 0):
-            raise InputError("bath.eta", f"must be a finite number >= 0, got {eta!r}")
+            raise ValueError(f"eta must be a finite number >= 0, got {eta!r}")
         if not (np.isfinite(cutoff_rad_per_ns) and cutoff_rad_per_ns > 0):
-            raise InputError(
-                "bath.cutoff_ghz", f"must be a finite number > 0, got {cutoff_rad_per_ns!r}"
+            raise ValueError(
+                f"cutoff_rad_per_ns must be a finite number > 0, got {cutoff_rad_per_ns!r}"
             )
-        if not (beta_ns > 0) or np.isnan(beta_ns):
-            raise InputError("bath.temperature_mk", f"must give beta > 0, got beta = {beta_ns!r}")
         self.eta = float(eta)
         self.cutoff = float(cutoff_rad_per_ns)
         self.beta = float(beta_ns)
@@ -120,7 +165,11 @@ class OhmicSpectralDensity:
 
 
 def lamb_shift_function(
-    gamma: SpectralDensity, *, scale: float, epsabs: float = 1e-14, epsrel: float = 1e-11
+    gamma: SpectralDensity | DensityFunction,
+    *,
+    scale: float,
+    epsabs: float = 1e-14,
+    epsrel: float = 1e-11,
 ) -> Callable[[NDArray[np.float64]], NDArray[np.float64]]:
     """S(omega) = (1/2 pi) P int gamma(w) / (omega - w) dw, by adaptive quadrature.
 
@@ -138,6 +187,8 @@ def lamb_shift_function(
     callable
         Vectorised S(omega) (each distinct value is integrated once).
     """
+
+    from scipy import integrate  # here: SciPy's quadrature is slow to import
 
     def f(w: float) -> float:
         return float(gamma(np.array([w]))[0])
@@ -172,20 +223,21 @@ class Bath:
 
     Parameters
     ----------
-    spectral_density : callable
-        ``gamma(omega)`` in rad/ns, shared by all coupling operators.
+    spectral_density : SpectralDensity or callable
+        ``gamma(omega)`` in rad/ns, shared by all coupling operators: a
+        :class:`SpectralDensity`, or a bare function with ``beta=`` given.
     operators : tuple of ndarray
         Hermitian coupling operators A_alpha (one per independent bath).
     lamb_shift : bool
         Include the Lamb-shift Hamiltonian (default False; see the module notes).
     beta : float or None
-        Inverse temperature (ns/rad) of the bath; defaults to
-        ``spectral_density.beta``.  The Davies generator's steady state is the
+        Inverse temperature (ns/rad) of the bath; defaults to the spectral
+        density's ``beta``.  The Davies generator's steady state is the
         Gibbs state at this beta, which requires ``gamma`` to satisfy detailed
         balance at this beta (checked on construction).
     """
 
-    spectral_density: SpectralDensity
+    spectral_density: SpectralDensity | DensityFunction
     operators: tuple[NDArray[Any], ...]
     lamb_shift: bool = False
     beta: float | None = None
@@ -203,12 +255,14 @@ class Bath:
             if not np.allclose(a, a.conj().T, atol=1e-12):
                 raise InputError(f"bath.operators[{k}]", "must be Hermitian")
         object.__setattr__(self, "operators", ops)
-        beta = self.beta if self.beta is not None else getattr(self.spectral_density, "beta", None)
+        beta = self.beta
+        if beta is None and isinstance(self.spectral_density, SpectralDensity):
+            beta = self.spectral_density.beta
         if beta is None or not (beta > 0):
             raise InputError(
                 "bath.temperature_mk",
                 "must be given: the bath needs an inverse temperature beta > 0 "
-                "(pass beta= or use a spectral density with a .beta attribute)",
+                f"(pass beta= or use a SpectralDensity, which has a beta), got {beta!r}",
             )
         object.__setattr__(self, "beta", float(beta))
         self._check_detailed_balance()
@@ -251,7 +305,11 @@ class Bath:
         """The Lamb-shift function S(omega) (rad/ns); see :func:`lamb_shift_function`."""
         fn = self.__dict__.get("_lamb_fn")
         if fn is None:
-            scale = getattr(self.spectral_density, "cutoff", 10.0)
+            density = self.spectral_density
+            if isinstance(density, SpectralDensity):
+                scale = density.cutoff
+            else:
+                scale = LAMB_SHIFT_DEFAULT_SCALE
             fn = lamb_shift_function(self.spectral_density, scale=scale)
             object.__setattr__(self, "_lamb_fn", fn)
         return fn(omega)
@@ -266,37 +324,98 @@ class Bath:
             object.__setattr__(self, k, v)
 
 
-_SPECTRA = ("ohmic", "none")
-_COUPLINGS = ("x", "y", "z")
+# -- the kinds a spec names -------------------------------------------------------------
+@dataclass(frozen=True)
+class SpectrumKind:
+    """One value of ``bath.spectrum``.
+
+    Attributes
+    ----------
+    name : str
+        The value in the spec.
+    summary : str
+        A few words for the spec template and for messages.
+    build : callable or None
+        ``build(bath_spec) -> SpectralDensity`` from a validated
+        :class:`~schedforge.spec_model.BathSpec`; ``None`` for a closed system.
+    """
+
+    name: str
+    summary: str
+    build: Callable[[BathSpec], SpectralDensity] | None
 
 
-def make_bath(spec: Any, n_qubits: int) -> Bath | None:
+#: The spectral densities a spec can name, by ``bath.spectrum`` (see :func:`register_spectrum`).
+SPECTRA: dict[str, SpectrumKind] = {}
+#: Pauli operators that can couple each qubit to its bath (``bath.coupling``).
+COUPLINGS: tuple[str, ...] = ("x", "y", "z")
+
+
+def register_spectrum(kind: SpectrumKind) -> SpectrumKind:
+    """Make a spectral density available to specs as ``bath.spectrum = kind.name``."""
+    if kind.name in SPECTRA:
+        raise ValueError(f"spectrum {kind.name!r} is already registered")
+    SPECTRA[kind.name] = kind
+    return kind
+
+
+def check_bath(spec: BathSpec) -> BathSpec:
+    """The ``[bath]`` section's rules; the one validator of the TOML and Python paths.
+
+    ``spectrum`` one of :data:`SPECTRA`, ``coupling`` one of :data:`COUPLINGS`,
+    ``eta >= 0``, ``cutoff_ghz`` from :data:`~schedforge.limits.MIN_CUTOFF_GHZ` to
+    :data:`~schedforge.limits.MAX_ENERGY_GHZ`, ``temperature_mk > 0`` (also for a
+    closed system: it sets the initial Gibbs state), ``lamb_shift`` a boolean.  The
+    lowest temperature a given spec affords depends on its energies and is checked
+    with them (:func:`schedforge.limits.check_energy_scales`).
+
+    Returns
+    -------
+    BathSpec
+        ``spec`` itself.
+
+    Raises
+    ------
+    InputError
+        Naming the field and the rule.
+    """
+    checks.choice(spec.spectrum, "bath.spectrum", tuple(SPECTRA))
+    checks.choice(spec.coupling, "bath.coupling", COUPLINGS)
+    checks.number(spec.eta, "bath.eta", ge=0)
+    checks.number(spec.cutoff_ghz, "bath.cutoff_ghz", ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ)
+    checks.number(spec.temperature_mk, "bath.temperature_mk", gt=0)
+    checks.boolean(spec.lamb_shift, "bath.lamb_shift")
+    return spec
+
+
+def _ohmic(spec: BathSpec) -> OhmicSpectralDensity:
+    return OhmicSpectralDensity(
+        spec.eta, GHZ_TO_RAD_PER_NS * spec.cutoff_ghz, beta_from_mk(spec.temperature_mk)
+    )
+
+
+register_spectrum(
+    SpectrumKind("ohmic", "ohmic with an exponential cutoff (eta, cutoff_ghz)", _ohmic)
+)
+register_spectrum(SpectrumKind("none", "no bath: a closed system", None))
+
+
+def make_bath(spec: BathSpec, n_qubits: int) -> Bath | None:
     """Build the bath of a :class:`~schedforge.spec_model.BathSpec`.
 
     Returns ``None`` for a closed system (``spectrum = "none"``).  Otherwise each
-    qubit couples to its own ohmic bath through the Pauli operator named by
-    ``coupling``.
+    qubit couples to its own bath of the registered spectral density through the
+    Pauli operator named by ``coupling``.  The spec's values are validated once,
+    by :func:`check_bath` (which the spec reader also uses).
     """
     from .hamiltonian import pauli_operator  # local: hamiltonian imports nothing from here
 
-    if spec.spectrum not in _SPECTRA:
-        raise InputError(
-            "bath.spectrum", f"must be one of {', '.join(_SPECTRA)}; got {spec.spectrum!r}"
-        )
-    if spec.spectrum == "none":
+    check_bath(spec)
+    kind = SPECTRA[spec.spectrum]
+    if kind.build is None:
         return None
-    coupling = str(spec.coupling).lower()
-    if coupling not in _COUPLINGS:
-        raise InputError("bath.coupling", f"must be one of x, y, z; got {spec.coupling!r}")
-    if not (np.isfinite(spec.temperature_mk) and spec.temperature_mk > 0):
-        raise InputError(
-            "bath.temperature_mk", f"must be a finite number > 0, got {spec.temperature_mk!r}"
-        )
-    if not (np.isfinite(spec.cutoff_ghz) and spec.cutoff_ghz > 0):
-        raise InputError("bath.cutoff_ghz", f"must be a finite number > 0, got {spec.cutoff_ghz!r}")
-    density = OhmicSpectralDensity(
-        spec.eta, GHZ_TO_RAD_PER_NS * spec.cutoff_ghz, beta_from_mk(spec.temperature_mk)
-    )
+    density = kind.build(spec)
+    coupling = spec.coupling
     ops = tuple(pauli_operator(coupling, q, n_qubits) for q in range(n_qubits))
     return Bath(density, ops, lamb_shift=bool(spec.lamb_shift))
 

@@ -45,10 +45,11 @@ from typing import Any
 
 import numpy as np
 
-from .error_law import CLOSED, COEFFICIENT_RTOL, RELAXATION_FACTOR, error_law
+from .error_law import CLOSED, COEFFICIENT_RTOL, OPEN, RELAXATION_FACTOR, error_law
 from .errors import InputError
-from .prediction import Prediction, predicted_coefficient, trace_norm
-from .schedules import Schedule, schedule_for_point
+from .metrics import trace_norm
+from .prediction import Prediction, predicted_coefficient
+from .schedules import Schedule, schedule_for_point, schedule_grid
 from .spec_model import Spec
 
 __all__ = [
@@ -171,20 +172,14 @@ def candidate_schedules(
 ) -> list[tuple[str, float, float]]:
     """The (family, k_start, k_end) candidates: the spec's sweep grid by default.
 
-    ``linear`` contributes one candidate with k_end = 0; ``gevrey`` has no power
-    law and is skipped (say so to the user elsewhere).
+    Expanded by :func:`schedforge.schedules.schedule_grid` (k_end defaults to the
+    sweep's, else :data:`DEFAULT_K_VALUES`): ``linear`` contributes one candidate
+    with k_end = 0, ``gevrey`` one with k_end = 0 (it has no power law: the plan
+    says so and skips it).
     """
     grid = spec.sweep
-    fams = list(families or (grid.family if grid and grid.family else (spec.schedule.family,)))
-    ks = list(k_values or (grid.k_end if grid and grid.k_end else DEFAULT_K_VALUES))
-    out: list[tuple[str, float, float]] = []
-    for fam in fams:
-        if fam == "linear":
-            out.append(("linear", 0.0, 0.0))
-            continue
-        for k in ks:
-            out.append((fam, float(spec.schedule.k_start), float(k)))
-    return sorted(set(out))
+    ks = k_values or (grid.k_end if grid and grid.k_end else DEFAULT_K_VALUES)
+    return schedule_grid(spec, families=families, k_ends=ks)
 
 
 def regime_start_ns(
@@ -257,7 +252,8 @@ def plan_budget(
         raise InputError("--error", f"must be a number in (0, 1), got {eps!r}")
     if confirm < 0:
         raise InputError("--confirm", f"must be an integer >= 0, got {confirm!r}")
-    from .dynamics import System, simulate_spec
+    from .dynamics import simulate_spec
+    from .system import System
 
     say = progress or (lambda _msg: None)
     system = System.from_spec(spec)
@@ -288,8 +284,8 @@ def plan_budget(
         )
     cands: list[BudgetCandidate] = []
     for family, k_start, k_end in candidate_schedules(spec, families, k_values):
-        if family == "gevrey":
-            warnings.append("gevrey schedules have no power law: no budget prediction")
+        if not error_law(OPEN, family, k_start, k_end).polynomial:
+            warnings.append(f"{family} schedules have no power law: no budget prediction")
             continue
         sched = schedule_for_point(spec, family, k_start, k_end)
         pred: Prediction = predicted_coefficient(system, sched)

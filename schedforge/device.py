@@ -1,93 +1,28 @@
-"""Device energy curves A(s) and B(s) (E/h in GHz).
+"""Device energy curves A(s), B(s) from a spec: linear or tabulated.
 
-H(s) = -(A(s)/2) sum_i X_i + (B(s)/2) H_problem.  A curve set evaluates A, B and
-their derivatives in s exactly (closed forms or piecewise polynomials), so that
-the Hamiltonian stays as smooth as the schedule demands.
+The curve kinds live in their own modules, below this one:
+:class:`~schedforge.device_curves.DeviceCurves` (the interface) and
+:class:`~schedforge.device_curves.LinearCurves` in :mod:`schedforge.device_curves`,
+:class:`~schedforge.device_table.TabulatedCurves` (a CSV table) in
+:mod:`schedforge.device_table`.  They are re-exported here.
 """
 
 from __future__ import annotations
 
-from abc import ABC, abstractmethod
-from typing import Any
+from .device_curves import DeviceCurves, LinearCurves
+from .device_table import TabulatedCurves
+from .spec_model import DeviceSpec
 
-import numpy as np
-from numpy.typing import ArrayLike, NDArray
-
-from .errors import InputError
-
-__all__ = ["DeviceCurves", "LinearCurves", "make_device_curves"]
+__all__ = ["DeviceCurves", "LinearCurves", "TabulatedCurves", "make_device_curves"]
 
 
-class DeviceCurves(ABC):
-    """A(s) and B(s) with derivatives.
+def make_device_curves(spec: DeviceSpec) -> DeviceCurves:
+    """Build the curves of a :class:`~schedforge.spec_model.DeviceSpec`.
 
-    Attributes
-    ----------
-    continuity : int or None
-        The curves are C^continuity in s; ``None`` means infinitely smooth.
+    ``curves = "linear"`` gives :class:`LinearCurves`; any other value is the path
+    of a CSV table, read by :meth:`TabulatedCurves.from_csv` (which checks the
+    file's SHA-256 against ``curves_sha256`` when it is recorded).
     """
-
-    continuity: int | None = None
-
-    def derivatives(self, s: ArrayLike, order: int) -> NDArray[np.float64]:
-        """A, B and their s-derivatives up to ``order``.
-
-        Returns
-        -------
-        ndarray
-            Shape ``(2, order + 1) + np.shape(s)``: ``[0, n]`` is d^n A / ds^n and
-            ``[1, n]`` is d^n B / ds^n, in GHz.
-        """
-        sa = np.asarray(s, dtype=float)
-        out = self._derivatives(np.atleast_1d(sa).ravel(), int(order))
-        return out.reshape((2, order + 1, *sa.shape))
-
-    def A(self, s: ArrayLike) -> NDArray[np.float64]:
-        """Driver energy A(s) in GHz."""
-        return self.derivatives(s, 0)[0, 0]
-
-    def B(self, s: ArrayLike) -> NDArray[np.float64]:
-        """Problem energy B(s) in GHz."""
-        return self.derivatives(s, 0)[1, 0]
-
-    @abstractmethod
-    def _derivatives(self, s: NDArray[np.float64], order: int) -> NDArray[np.float64]:
-        """Return shape (2, order + 1, s.size) for a flat float array s."""
-
-    @abstractmethod
-    def describe(self) -> dict[str, Any]:
-        """Metadata for headers and reports."""
-
-
-class LinearCurves(DeviceCurves):
-    """A(s) = A0 (1 - s), B(s) = B0 s."""
-
-    continuity = None
-
-    def __init__(self, A0_ghz: float, B0_ghz: float) -> None:
-        for name, v in (("device.A0_ghz", A0_ghz), ("device.B0_ghz", B0_ghz)):
-            if not (np.isfinite(v) and v > 0):
-                raise InputError(name, f"must be a finite number > 0, got {v!r}")
-        self.A0_ghz = float(A0_ghz)
-        self.B0_ghz = float(B0_ghz)
-
-    def _derivatives(self, s: NDArray[np.float64], order: int) -> NDArray[np.float64]:
-        out = np.zeros((2, order + 1, s.size))
-        out[0, 0] = self.A0_ghz * (1.0 - s)
-        out[1, 0] = self.B0_ghz * s
-        if order >= 1:
-            out[0, 1] = -self.A0_ghz
-            out[1, 1] = self.B0_ghz
-        return out
-
-    def describe(self) -> dict[str, Any]:
-        return {"curves": "linear", "A0_ghz": self.A0_ghz, "B0_ghz": self.B0_ghz}
-
-
-def make_device_curves(spec: Any) -> DeviceCurves:
-    """Build the curves of a :class:`~schedforge.spec_model.DeviceSpec`."""
     if spec.curves == "linear":
         return LinearCurves(spec.A0_ghz, spec.B0_ghz)
-    from .device_table import TabulatedCurves  # CSV curves (waveform/device issue)
-
-    return TabulatedCurves.from_csv(spec.curves, sha256=getattr(spec, "curves_sha256", None))
+    return TabulatedCurves.from_csv(spec.curves, sha256=spec.curves_sha256)

@@ -55,7 +55,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.interpolate import BSpline, make_interp_spline
 
-from .device import DeviceCurves
+from .device_curves import DeviceCurves
 from .errors import InputError
 
 __all__ = ["COARSE_RTOL", "COLUMNS", "MAX_CURVES_BYTES", "TabulatedCurves", "file_sha256"]

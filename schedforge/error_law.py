@@ -22,7 +22,8 @@ two ends:
 
 A family without a k (``linear``: nothing is flat, k = 0 at both ends; ``gevrey``:
 flat to every order at the end, and at the start too when asked) is mapped to its
-real flatness orders by :func:`end_orders`.  An infinite order means "faster than any
+real flatness orders by :func:`end_orders`, which asks the family's class
+(``Schedule.end_orders``).  An infinite order means "faster than any
 power": no polynomial law (slope nan).
 
 The law holds only once tf is long against the system's own time scale
@@ -40,10 +41,11 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from .schedules import FAMILIES, Schedule
+
 __all__ = [
     "CLOSED",
     "COEFFICIENT_RTOL",
-    "NO_K_END_FAMILIES",
     "OPEN",
     "RELAXATION_FACTOR",
     "ErrorLaw",
@@ -73,9 +75,6 @@ RELAXATION_FACTOR: float = 5.0
 #: correction of a few per cent and rejects fits read off a transient (0.7 % of the
 #: predicted coefficient in the reproduction above).  Our choice, no source.
 COEFFICIENT_RTOL: float = 0.10
-#: Families whose flatness does not depend on a k_end parameter: a sweep computes
-#: them once per tf (``linear``: nothing flat; ``gevrey``: flat to every order).
-NO_K_END_FAMILIES: frozenset[str] = frozenset({"linear", "gevrey"})
 
 
 @dataclass(frozen=True)
@@ -130,14 +129,12 @@ def dynamics_kind(obj: Any) -> str:
 def end_orders(family: str, k_start: float, k_end: float) -> tuple[float, float]:
     """The schedule's real flatness orders (k_start, k_end) at the two ends.
 
+    The family's own trait (:meth:`schedforge.schedules.Schedule.end_orders`):
     ``linear``: (0, 0).  ``gevrey``: k_end = inf, and k_start = inf when the start is
-    flat too (a spec's ``k_start > 0``), else 0.  Other families: as given.
+    flat too (a spec's ``k_start > 0``), else 0.  Other families (and names no family
+    has): as given.
     """
-    if family == "linear":
-        return 0.0, 0.0
-    if family == "gevrey":
-        return (math.inf if float(k_start) > 0 else 0.0), math.inf
-    return float(k_start), float(k_end)
+    return FAMILIES.get(family, Schedule).end_orders(k_start, k_end)
 
 
 def error_law(dynamics: str, family: str, k_start: float, k_end: float) -> ErrorLaw:

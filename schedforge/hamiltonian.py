@@ -18,18 +18,23 @@ Kronecker products of large matrices, so 8 qubits (d = 256) are cheap.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 from scipy import sparse
 
-from .device import DeviceCurves
+from . import checks
+from .device_curves import DeviceCurves
 from .errors import InputError
+from .limits import MAX_COEFFICIENT, MAX_QUBITS
+from .spec_model import ProblemSpec
 from .units import GHZ_TO_RAD_PER_NS
 
 __all__ = [
     "AnnealingHamiltonian",
+    "check_problem",
     "driver_matrix",
     "ising_diagonal",
     "pauli_operator",
@@ -111,34 +116,57 @@ def ising_diagonal(
     return diag
 
 
-def _check_problem(
-    problem: Any,
-) -> tuple[int, tuple[float, ...], tuple[tuple[int, int, float], ...]]:
-    n = problem.qubits
-    if not isinstance(n, (int, np.integer)) or isinstance(n, bool) or not (1 <= n <= 10):
-        raise InputError("problem.qubits", f"must be an integer in 1..10, got {n!r}")
-    h = tuple(float(v) for v in problem.h)
-    if len(h) != n:
-        raise InputError("problem.h", f"must have {n} entries (one per qubit), got {len(h)}")
-    if not all(np.isfinite(h)):
-        raise InputError("problem.h", "must contain finite numbers")
-    seen: set[tuple[int, int]] = set()
+def check_problem(problem: ProblemSpec) -> ProblemSpec:
+    """The ``[problem]`` section's rules; the one validator of the TOML and Python paths.
+
+    Parameters
+    ----------
+    problem : ProblemSpec
+        Built by the spec reader (types already read from TOML) or in Python.
+
+    Returns
+    -------
+    ProblemSpec
+        With plain ``int`` / ``float`` values in tuples.
+
+    Raises
+    ------
+    InputError
+        Naming the field (``problem.qubits``, ``problem.h[1]``, ``problem.J[2][0]``...):
+        1 to :data:`~schedforge.limits.MAX_QUBITS` qubits, one field per qubit,
+        coefficients within :data:`~schedforge.limits.MAX_COEFFICIENT`, couplings
+        ``[i, j, J_ij]`` with 0 <= i < j < qubits, each pair once.
+    """
+    n = checks.integer(problem.qubits, "problem.qubits", ge=1, le=MAX_QUBITS)
+    if isinstance(problem.h, str) or not isinstance(problem.h, Sequence):
+        raise InputError("problem.h", f"must be an array, got {checks.shown(problem.h)}")
+    if len(problem.h) != n:
+        raise InputError("problem.h", f"must have one entry per qubit ({n}), got {len(problem.h)}")
+    h = tuple(_coefficient(v, f"problem.h[{i}]") for i, v in enumerate(problem.h))
+    if isinstance(problem.J, str) or not isinstance(problem.J, Sequence):
+        raise InputError("problem.J", f"must be an array, got {checks.shown(problem.J)}")
+    pairs: set[tuple[int, int]] = set()
     couplings = []
-    for m, entry in enumerate(problem.J):
-        if len(entry) != 3:
-            raise InputError(f"problem.J[{m}]", "must be [i, j, value]")
-        i, j, val = entry
-        if int(i) != i or int(j) != j or not (0 <= int(i) < int(j) < n):
+    for idx, entry in enumerate(problem.J):
+        where = f"problem.J[{idx}]"
+        if isinstance(entry, str) or not isinstance(entry, Sequence) or len(entry) != 3:
+            raise InputError(where, f"must be an array [i, j, J_ij], got {checks.shown(entry)}")
+        i = checks.integer(entry[0], f"{where}[0]", ge=0)
+        j = checks.integer(entry[1], f"{where}[1]", ge=0)
+        value = _coefficient(entry[2], f"{where}[2]")
+        if not i < j < n:
             raise InputError(
-                f"problem.J[{m}]", f"must have integers 0 <= i < j < {n}, got {entry!r}"
+                where, f"must have qubit indices 0 <= i < j < qubits ({n}), got i={i}, j={j}"
             )
-        if not np.isfinite(val):
-            raise InputError(f"problem.J[{m}]", f"value must be finite, got {val!r}")
-        if (int(i), int(j)) in seen:
-            raise InputError(f"problem.J[{m}]", f"repeats the pair ({int(i)}, {int(j)})")
-        seen.add((int(i), int(j)))
-        couplings.append((int(i), int(j), float(val)))
-    return int(n), h, tuple(couplings)
+        if (i, j) in pairs:
+            raise InputError(where, f"repeats the pair ({i}, {j}); give each pair once")
+        pairs.add((i, j))
+        couplings.append((i, j, value))
+    return ProblemSpec(qubits=n, h=h, J=tuple(couplings))
+
+
+def _coefficient(value: object, path: str) -> float:
+    return checks.number(value, path, ge=-MAX_COEFFICIENT, le=MAX_COEFFICIENT)
 
 
 class AnnealingHamiltonian:
@@ -149,7 +177,8 @@ class AnnealingHamiltonian:
     curves : DeviceCurves
         A(s), B(s) in GHz with exact derivatives.
     problem : ProblemSpec
-        Number of qubits, fields ``h`` and couplings ``J`` (dimensionless).
+        Number of qubits, fields ``h`` and couplings ``J`` (dimensionless);
+        checked by :func:`check_problem`.
 
     Attributes
     ----------
@@ -165,16 +194,17 @@ class AnnealingHamiltonian:
         The device curves.
     """
 
-    def __init__(self, curves: DeviceCurves, problem: Any) -> None:
-        n, h, J = _check_problem(problem)
+    def __init__(self, curves: DeviceCurves, problem: ProblemSpec) -> None:
+        checked = check_problem(problem)
+        n = checked.qubits
         self.curves = curves
         self.problem = problem
         self.n_qubits = n
         self.dim = 2**n
-        self.h = h
-        self.J = J
+        self.h = checked.h
+        self.J = checked.J
         self.driver = driver_matrix(n)
-        self.problem_diagonal = ising_diagonal(n, h, J)
+        self.problem_diagonal = ising_diagonal(n, self.h, self.J)
         self.problem_matrix = np.diag(self.problem_diagonal)
 
     def _combine(self, a_ghz: float, b_ghz: float) -> NDArray[np.float64]:

@@ -43,8 +43,12 @@ from .units import GHZ_TO_RAD_PER_NS, HBAR_OVER_KB_K_NS
 __all__ = [
     "BETA_SPREAD_MAX",
     "CUTOFF_RATIO_MAX",
+    "MAX_COEFFICIENT",
+    "MAX_ENERGY_GHZ",
     "MAX_GENERAL_CYCLES",
     "MAX_HELD_SAMPLES",
+    "MAX_QUBITS",
+    "MIN_CUTOFF_GHZ",
     "available_memory_bytes",
     "check_energy_scales",
     "check_memory",
@@ -53,6 +57,18 @@ __all__ = [
     "memory_estimate_bytes",
 ]
 
+#: Largest number of qubits a spec may declare: 8 qubits need about 5.3 GB to set up
+#: (measured, see :data:`_MEASURED_PEAK_BYTES`) and hours per point; 9 would need about
+#: 85 GB.
+MAX_QUBITS = 8
+#: Largest |h_i|, |J_ij| (dimensionless multipliers of B(s)).
+MAX_COEFFICIENT = 1e6
+#: Largest energy scale (A0_ghz, B0_ghz, cutoff_ghz, a curves table's A and B) in GHz.
+#: Qubit energies are of order 1-100 GHz (common practice, no source); far beyond,
+#: numbers stop being energies and products of them overflow.
+MAX_ENERGY_GHZ = 1e6
+#: Smallest bath cutoff in GHz (1 kHz): below it every relaxation rate is zero.
+MIN_CUTOFF_GHZ = 1e-6
 #: Largest beta W (W: spread of the energies over the anneal, rad/ns; beta in ns/rad).
 BETA_SPREAD_MAX = 1400.0
 #: Largest W(1) / omega_c (final energy spread over the bath cutoff).

@@ -12,60 +12,88 @@ with M the largest |h_i|, |J_ij| and the z of draw d from
 ``default_rng(SeedSequence([seed, d]))`` (:func:`schedforge.control_noise.draw_normals`:
 the same h, J errors as draw d of ``schedforge precision``), so a draw is the same
 whichever executor runs it.  The amplitude errors are constant in s (a miscalibrated
-gain); they need ``device.curves = "linear"``.
+gain) and apply to any device curves, linear or tabulated (:class:`ScaledCurves`).
+
+A draw's system (:func:`draw_system`: noisy problem, scaled curves, the spec's bath) is
+built once per process and shared by every anneal of that draw, so its pre-flight (the
+steady-state check and the gap scan) runs once per draw, not once per point.
 
 Per point the store keeps the trace distance to the *noisy* problem's own final
 steady state and, in ``stats_json["noise"]``, the probability of the *intended*
 (noiseless) ground space of H(1) at the end.  The points of draw ``d`` are stored with
 ``variant = "draw-<d>"``; the noiseless points (``variant = "nominal"``) are run too,
-for reference.  The store is keyed by the spec's physics and the noise model (level,
-terms, amplitude level, seed), not by the number of draws: asking for more draws
-later computes only the new ones.
+for reference.  When the spec has a ``[waveform]`` section, every point also has a
+played twin (the sweep's ``"realized"`` variant: the samples the hardware plays, on the
+draw's device), stored with ``"-realized"`` appended to the variant.  The store is
+keyed by the spec's physics and the noise model (level, terms, amplitude level, seed),
+not by the number of draws: asking for more draws later computes only the new ones.
 
 :func:`summarize_ensemble` gives per schedule and tf the mean, standard deviation and
 spread (std / mean) of both quantities, and per schedule and draw a scaling fit of
 the trace distance against tf (:func:`schedforge.analysis.fit_scaling`), to see
-whether the designed slope -(k_end + 1) survives the noise draw by draw.
+whether the error law survives the noise draw by draw.  The law is the one of the
+dynamics (:func:`schedforge.error_law.error_law`: open, ``tf^-(k_end + 1)``; closed,
+``tf^-(min(k_start, k_end) + 1)``), and each draw's fit only trusts anneal times long
+against that draw's own time scale (:func:`schedforge.error_law.law_time_scale_ns` of
+its noisy system, stored with each point).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import math
 import os
 import socket
+import threading
 import time
 import traceback
+from collections import OrderedDict
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from . import __version__
 from .control_noise import draw_normals, noisy_problem
+from .device_curves import DeviceCurves, LinearCurves
+from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
+from .schedules import schedule_label
 from .spec_model import NoiseSpec, Spec
 
 __all__ = [
+    "DRAW_SYSTEM_CACHE_BYTES",
+    "DRAW_SYSTEM_CACHE_MAX",
     "NOMINAL",
+    "REALIZED_SUFFIX",
+    "TABLE_FILES",
     "DrawErrors",
     "EnsemblePoint",
     "NoiseSweepOutcome",
+    "ScaledCurves",
     "check_draws",
     "draw_errors",
+    "draw_system",
     "ensemble_points",
     "intended_ground_probability",
     "noise_physics_hash",
     "noisy_spec",
+    "parse_variant",
     "read_ensemble_rows",
     "run_ensemble_point",
     "run_noise_sweep",
+    "scale_curves",
     "summarize_ensemble",
+    "tabulate_ensemble",
+    "write_ensemble_tables",
 ]
 
 #: Draw index of the noiseless reference points.
@@ -118,85 +146,222 @@ def draw_errors(spec: Spec, draw: int) -> DrawErrors:
 
 
 def noisy_spec(spec: Spec, draw: int) -> Spec:
-    """The spec of draw ``draw``: programmed problem and device curves with their errors.
+    """The spec of draw ``draw`` with its programmed (noisy) problem h', J'.
+
+    The draw's amplitude errors are not in it (a spec cannot scale tabulated curves):
+    :func:`draw_system` applies them.
 
     Raises
     ------
     InputError
-        Amplitude errors on tabulated device curves (not supported), or a draw
-        whose amplitude factor is not positive.
+        A draw whose amplitude factor is not positive.
     """
     err = draw_errors(spec, draw)
-    device = spec.device
-    if (err.factor_A, err.factor_B) != (1.0, 1.0):
-        if device.curves != "linear":
-            raise InputError(
-                "noise.amplitude_level",
-                'needs device.curves = "linear" (amplitude errors of tabulated curves are '
-                "not supported); set it to 0 for these curves",
-            )
-        if err.factor_A <= 0 or err.factor_B <= 0:
-            raise InputError(
-                "noise.amplitude_level",
-                f"gives draw {draw} a non-positive amplitude factor "
-                f"(A x {err.factor_A:.3g}, B x {err.factor_B:.3g}); lower it",
-            )
-        device = dataclasses.replace(
-            device, A0_ghz=device.A0_ghz * err.factor_A, B0_ghz=device.B0_ghz * err.factor_B
+    if err.factor_A <= 0 or err.factor_B <= 0:
+        raise InputError(
+            "noise.amplitude_level",
+            f"gives draw {draw} a non-positive amplitude factor "
+            f"(A x {err.factor_A:.3g}, B x {err.factor_B:.3g}); lower it",
         )
-    return dataclasses.replace(spec, problem=err.problem.to_spec(), device=device)
+    return dataclasses.replace(spec, problem=err.problem.to_spec())
+
+
+class ScaledCurves(DeviceCurves):
+    """Device curves with relative amplitude errors: A'(s) = a A(s), B'(s) = b B(s).
+
+    Any curves (linear or tabulated): every derivative is scaled by the same factor.
+    The data-quality checks of a table (:meth:`smoothness_warnings`) are those of the
+    curves it scales (their thresholds are relative, so a gain does not change them).
+
+    Parameters
+    ----------
+    curves : DeviceCurves
+        The designed curves.
+    factor_A, factor_B : float
+        The gains a, b (> 0).
+    """
+
+    def __init__(self, curves: DeviceCurves, factor_A: float, factor_B: float) -> None:
+        if not (factor_A > 0 and factor_B > 0):
+            raise ValueError(f"factors must be > 0, got {factor_A!r}, {factor_B!r}")
+        self.curves = curves
+        self.factors = np.array([float(factor_A), float(factor_B)])
+        self.continuity = curves.continuity
+
+    def __getattr__(self, name: str) -> Any:
+        if name in ("smoothness_warnings", "warnings"):  # tabulated curves' checks
+            return getattr(self.curves, name)
+        raise AttributeError(name)
+
+    def _derivatives(self, s: NDArray[np.float64], order: int) -> NDArray[np.float64]:
+        return self.curves.derivatives(s, order) * self.factors[:, None, None]
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            **self.curves.describe(),
+            "factor_A": float(self.factors[0]),
+            "factor_B": float(self.factors[1]),
+        }
+
+
+def scale_curves(curves: DeviceCurves, factor_A: float, factor_B: float) -> DeviceCurves:
+    """``curves`` with A, B scaled: linear curves as linear curves with A0, B0 scaled
+    (no cost per evaluation), any other curves wrapped in :class:`ScaledCurves`."""
+    if type(curves) is LinearCurves:
+        return LinearCurves(curves.A0_ghz * factor_A, curves.B0_ghz * factor_B)
+    return ScaledCurves(curves, factor_A, factor_B)
+
+
+#: Memory (bytes) for the systems of recent draws kept in each process; a system
+#: holds at most 16 d^2 (n + 2) bytes of matrices (H(s)'s two parts and one coupling
+#: operator per qubit).  Our choice: small against a worker's memory.
+DRAW_SYSTEM_CACHE_BYTES = 256 * 2**20
+#: At most this many draw systems per process.
+DRAW_SYSTEM_CACHE_MAX = 1024
+_draw_systems: OrderedDict[tuple[Spec, int], Any] = OrderedDict()
+_draw_systems_lock = threading.Lock()
+
+
+def _build_draw_system(spec: Spec, draw: int) -> Any:
+    from .hamiltonian import AnnealingHamiltonian
+    from .system import System
+
+    err = draw_errors(spec, draw)
+    base = System.from_spec(noisy_spec(spec, draw))
+    if (err.factor_A, err.factor_B) == (1.0, 1.0):
+        return base
+    curves = scale_curves(base.hamiltonian.curves, err.factor_A, err.factor_B)
+    # the grouping tolerance: the spec's, else the default of the scaled H (as System does)
+    tol = None if spec.numerics.secular_tol_ghz is None else base.degeneracy_tol
+    return System(
+        AnnealingHamiltonian(curves, base.hamiltonian.problem),
+        base.bath,
+        base.initial,
+        beta=base.beta,
+        degeneracy_tol=tol,
+    )
+
+
+def draw_system(spec: Spec, draw: int) -> Any:
+    """The system of draw ``draw`` (``NOMINAL``: the spec's own), shared within a process.
+
+    Noisy problem (:func:`noisy_spec`), the designed curves scaled by the draw's
+    amplitude factors (:func:`scale_curves`), the spec's bath and initial state.
+    The most recent draws' systems are kept (:data:`DRAW_SYSTEM_CACHE_BYTES`), so the
+    anneals of one draw share one pre-flight.  Safe: a system is a pure function of
+    (spec, draw), and its pre-flight caches only what that determines.
+
+    Raises
+    ------
+    InputError
+        Bad curves or bath, or a non-positive amplitude factor.
+    """
+    key = (spec, int(draw))
+    with _draw_systems_lock:
+        system = _draw_systems.get(key)
+        if system is not None:
+            _draw_systems.move_to_end(key)
+            return system
+    system = _build_draw_system(spec, int(draw))
+    room = DRAW_SYSTEM_CACHE_BYTES // (16 * system.dim**2 * (system.hamiltonian.n_qubits + 2))
+    with _draw_systems_lock:
+        _draw_systems[key] = system
+        while len(_draw_systems) > max(2, min(DRAW_SYSTEM_CACHE_MAX, room)):
+            _draw_systems.popitem(last=False)
+    return system
 
 
 # ---------------------------------------------------------------------------
 # points
 # ---------------------------------------------------------------------------
+#: Suffix of the store variant of a point run as the hardware plays it.
+REALIZED_SUFFIX = "-realized"
+
+
 @dataclass(frozen=True, order=True)
 class EnsemblePoint:
-    """One anneal of the ensemble: a schedule, an anneal time and a draw (-1: nominal)."""
+    """One anneal of the ensemble: a schedule, an anneal time and a draw (-1: nominal).
+
+    ``played`` points run the waveform the hardware plays (the sweep's ``"realized"``
+    variant, :func:`schedforge.waveform.realize` with the spec's ``[waveform]``)
+    under the draw's errors: the samples are those of the designed schedule (the
+    control errors do not change what the generator plays), the device that plays
+    them is the draw's.
+    """
 
     family: str
     k_start: float
     k_end: float
     tf_ns: float
     draw: int
+    played: bool = False
+
+    @property
+    def sweep_variant(self) -> str:
+        """The sweep's variant: ``"ideal"`` (designed) or ``"realized"`` (played)."""
+        return "realized" if self.played else "ideal"
 
     @property
     def variant(self) -> str:
-        """``"nominal"`` or ``"draw-<d>"`` (stored in the store's variant column)."""
-        return "nominal" if self.draw == NOMINAL else f"draw-{self.draw:05d}"
+        """The store's variant column: ``"nominal"`` or ``"draw-<d>"``, with
+        ``"-realized"`` appended for played points."""
+        base = "nominal" if self.draw == NOMINAL else f"draw-{self.draw:05d}"
+        return base + (REALIZED_SUFFIX if self.played else "")
 
     def canonical(self) -> str:
-        """Canonical JSON of the coordinates (floats as ``repr``), used in the key."""
-        return json.dumps(
-            {
-                "family": self.family,
-                "k_start": repr(float(self.k_start)),
-                "k_end": repr(float(self.k_end)),
-                "tf_ns": repr(float(self.tf_ns)),
-                "draw": int(self.draw),
-            },
-            sort_keys=True,
-        )
+        """Canonical JSON of the coordinates (floats as ``repr``), used in the key.
+
+        A designed point's text is what it was before played points existed, so a
+        store of designed points keeps its keys.
+        """
+        coords: dict[str, Any] = {
+            "family": self.family,
+            "k_start": repr(float(self.k_start)),
+            "k_end": repr(float(self.k_end)),
+            "tf_ns": repr(float(self.tf_ns)),
+            "draw": int(self.draw),
+        }
+        if self.played:
+            coords["variant"] = "realized"
+        return json.dumps(coords, sort_keys=True)
 
     def label(self) -> str:
-        """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"``."""
-        k = "" if self.family == "linear" else f" k={self.k_start:g}/{self.k_end:g}"
+        """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"`` (``" realized"`` appended)."""
+        name = schedule_label(self.family, self.k_start, self.k_end)
         d = "nominal" if self.draw == NOMINAL else f"draw {self.draw}"
-        return f"{self.family}{k} tf={self.tf_ns:g} ns {d}"
+        return f"{name} tf={self.tf_ns:g} ns {d}" + (" realized" if self.played else "")
+
+
+def parse_variant(variant: str) -> tuple[int, str] | None:
+    """``(draw, sweep variant)`` of a store variant of an ensemble; None for others.
+
+    ``"nominal"`` -> ``(NOMINAL, "ideal")``, ``"draw-00007-realized"`` ->
+    ``(7, "realized")``.
+    """
+    played = variant.endswith(REALIZED_SUFFIX)
+    base = variant[: -len(REALIZED_SUFFIX)] if played else variant
+    kind = "realized" if played else "ideal"
+    if base == "nominal":
+        return NOMINAL, kind
+    if base.startswith("draw-") and base[5:].isdigit():
+        return int(base[5:]), kind
+    return None
 
 
 def ensemble_points(spec: Spec) -> list[EnsemblePoint]:
-    """Every (schedule, tf) of the spec's grid x (nominal + ``noise.draws`` draws), sorted.
+    """Every point of the spec's grid x (nominal + ``noise.draws`` draws), sorted.
 
-    Only the designed (ideal) schedules: realized-waveform twins are not run.
+    With a ``[waveform]`` section the grid has played ("realized") twins, and so
+    does the ensemble: each draw runs the played waveform too.
     """
     from .sweep import sweep_points
 
     noise = _noise(spec)
-    grid = [p for p in sweep_points(spec) if p.variant == "ideal"]
     draws = [NOMINAL, *range(noise.draws)]
     return sorted(
-        EnsemblePoint(p.family, p.k_start, p.k_end, p.tf_ns, d) for p in grid for d in draws
+        EnsemblePoint(p.family, p.k_start, p.k_end, p.tf_ns, d, p.variant == "realized")
+        for p in sweep_points(spec)
+        for d in draws
     )
 
 
@@ -213,12 +378,18 @@ def noise_physics_hash(spec: Spec) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
 
 
+@functools.lru_cache(maxsize=4)
+def _intended_ground_space(spec: Spec) -> NDArray[Any]:
+    """Orthonormal basis (columns) of the ground space of the noiseless H(1)."""
+    eig = draw_system(spec, NOMINAL).eigen(1.0)
+    v0 = eig.vectors[:, eig.labels == 0]
+    v0.setflags(write=False)
+    return v0
+
+
 def intended_ground_probability(spec: Spec, rho: Any) -> float:
     """tr(P_0 rho) with P_0 the ground space of the *noiseless* H(1) of ``spec``."""
-    from .dynamics import System
-
-    eig = System.from_spec(spec).eigen(1.0)
-    v0 = eig.vectors[:, eig.labels == 0]
+    v0 = _intended_ground_space(spec)
     return float(np.real(np.trace(v0.conj().T @ np.asarray(rho) @ v0)))
 
 
@@ -244,7 +415,7 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
 
     row: dict[str, Any] = {
         "family": point.family,
-        "variant": point.variant,
+        "variant": point.variant,  # nominal / draw-<d>, with -realized for played points
         "k_start": float(point.k_start),
         "k_end": float(point.k_end),
         "tf_ns": float(point.tf_ns),
@@ -257,10 +428,12 @@ def run_ensemble_point(spec: Spec, point: EnsemblePoint) -> dict[str, Any]:
         errs = draw_errors(spec, point.draw)
         result = simulate_spec(
             noisy_spec(spec, point.draw),
+            system=draw_system(spec, point.draw),
             tf_ns=point.tf_ns,
             k_end=point.k_end,
             family=point.family,
             k_start=point.k_start,
+            variant=point.sweep_variant,
         )
         row.update(result_columns(result))
         p_int = (
@@ -304,20 +477,21 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
     """Flat ensemble rows from store rows: coordinates, draw, both quantities, status."""
     out = []
     for r in rows:
-        variant = str(r["variant"])
-        if variant == "nominal":
-            draw = NOMINAL
-        elif variant.startswith("draw-"):
-            draw = int(variant[5:])
-        else:
+        parsed = parse_variant(str(r["variant"]))
+        if parsed is None:
             continue
+        draw, variant = parsed
         stats = json.loads(r.get("stats_json") or "{}")
         info = stats.get("noise", {})
         ok = r["status"] == "ok"
+        # the draw's own pre-flight numbers (System.diagnostics, copied into the stats)
+        closed = "min_spectral_gap_ghz" in stats and "liouvillian_gap_final_ghz" not in stats
+        time_scale = law_time_scale_ns(SimpleNamespace(diagnostics=stats, closed=closed))
         p = info.get("intended_ground_probability", math.nan)
         out.append(
             {
                 "family": r["family"],
+                "variant": variant,
                 "k_start": float(r["k_start"]),
                 "k_end": float(r["k_end"]),
                 "tf_ns": float(r["tf_ns"]),
@@ -326,11 +500,14 @@ def read_ensemble_rows(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]
                 "intended_ground_probability": float(p) if ok and p is not None else math.nan,
                 "factor_A": float(info.get("factor_A", math.nan)),
                 "factor_B": float(info.get("factor_B", math.nan)),
+                "time_scale_ns": time_scale,
                 "status": r["status"],
                 "message": r.get("message", ""),
             }
         )
-    out.sort(key=lambda x: (x["family"], x["k_start"], x["k_end"], x["tf_ns"], x["draw"]))
+    out.sort(
+        key=lambda x: (x["family"], x["variant"], x["k_start"], x["k_end"], x["tf_ns"], x["draw"])
+    )
     return out
 
 
@@ -345,10 +522,18 @@ def _moments(values: Sequence[float]) -> tuple[float, float, float]:
     return mean, std, spread
 
 
+def _schedule_key(r: Mapping[str, Any]) -> tuple[str, str, float, float]:
+    """(family, variant, k_start, k_end) of an ensemble row (variant "ideal" if absent)."""
+    return (str(r["family"]), str(r.get("variant", "ideal")), r["k_start"], r["k_end"])
+
+
 def summarize_ensemble(
-    rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14
+    rows: Sequence[Mapping[str, Any]], *, atol: float = 1e-14, dynamics: str = OPEN
 ) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
     """Distribution per (schedule, tf), and the error slope per (schedule, draw).
+
+    A schedule is (family, variant, k_start, k_end): a played ("realized") twin is
+    summarized and fitted on its own.
 
     Parameters
     ----------
@@ -356,26 +541,33 @@ def summarize_ensemble(
         From :func:`read_ensemble_rows`.
     atol : float
         The integrator's ``atol`` (sets the numerical floor of the fits).
+    dynamics : {"open", "closed"}
+        Which error law the per-draw fits expect
+        (:func:`schedforge.error_law.dynamics_kind` of the spec).  A row's
+        ``time_scale_ns`` (when present) is the time tf must be long against.
 
     Returns
     -------
     per_point : list of dict
-        family, k_start, k_end, tf_ns, draws, ok, the nominal values, and the mean,
-        std and spread (std / mean) over the draws of the trace distance and of the
-        intended ground-state probability (only draws whose status is ok).
+        family, variant, k_start, k_end, tf_ns, draws, ok, the nominal values, and
+        the mean, std and spread (std / mean) over the draws of the trace distance
+        and of the intended ground-state probability (only draws whose status is ok).
     per_draw : list of dict
-        family, k_start, k_end, draw, slope, slope_stderr, expected_slope, verdict.
+        family, variant, k_start, k_end, draw, slope, slope_stderr, expected_slope,
+        error_law, verdict, message.
     per_schedule : list of dict
         The nominal fit and, over the draws: how many were fitted, how many agree
         with the expected slope, and the mean and std of their slopes.
     """
     from .analysis import AGREES, fit_scaling, numerical_floor
 
-    groups: dict[tuple[str, float, float, float], list[Mapping[str, Any]]] = {}
+    if dynamics not in (OPEN, CLOSED):
+        raise ValueError(f"dynamics must be {OPEN!r} or {CLOSED!r}, got {dynamics!r}")
+    groups: dict[tuple[Any, ...], list[Mapping[str, Any]]] = {}
     for r in rows:
-        groups.setdefault((r["family"], r["k_start"], r["k_end"], r["tf_ns"]), []).append(r)
+        groups.setdefault((*_schedule_key(r), r["tf_ns"]), []).append(r)
     per_point = []
-    for (fam, k0, k1, tf), group in sorted(groups.items()):
+    for (fam, var, k0, k1, tf), group in sorted(groups.items()):
         draws = [r for r in group if r["draw"] != NOMINAL]
         ok = [r for r in draws if r["status"] == "ok"]
         nominal = [r for r in group if r["draw"] == NOMINAL]
@@ -384,6 +576,7 @@ def summarize_ensemble(
         per_point.append(
             {
                 "family": fam,
+                "variant": var,
                 "k_start": k0,
                 "k_end": k1,
                 "tf_ns": tf,
@@ -401,49 +594,57 @@ def summarize_ensemble(
                 "intended_probability_spread": pg[2],
             }
         )
-    series: dict[tuple[str, float, float, int], list[Mapping[str, Any]]] = {}
+    series: dict[tuple[Any, ...], list[Mapping[str, Any]]] = {}
     for r in rows:
-        series.setdefault((r["family"], r["k_start"], r["k_end"], r["draw"]), []).append(r)
+        series.setdefault((*_schedule_key(r), r["draw"]), []).append(r)
     per_draw = []
     floor = numerical_floor(atol)
-    for (fam, k0, k1, d), group in sorted(series.items()):
+    for (fam, var, k0, k1, d), group in sorted(series.items()):
+        scales = [float(r.get("time_scale_ns", math.nan)) for r in group]
+        known = [t for t in scales if not math.isnan(t)]
         fit = fit_scaling(
             [r["tf_ns"] for r in group],
             [r["trace_distance"] for r in group],
             k_end=k1,
             status=[r["status"] for r in group],
             family=fam,
-            variant="nominal" if d == NOMINAL else f"draw-{d:05d}",
+            variant=var,
             k_start=k0,
             floor=floor,
             noise=atol,
+            dynamics=dynamics,
+            time_scale_ns=max(known) if known else math.nan,
         )
         per_draw.append(
             {
                 "family": fam,
+                "variant": var,
                 "k_start": k0,
                 "k_end": k1,
                 "draw": d,
                 "slope": fit.slope,
                 "slope_stderr": fit.slope_stderr,
                 "expected_slope": fit.expected_slope,
+                "error_law": fit.law.label,
                 "verdict": fit.verdict,
+                "message": fit.message,
             }
         )
     per_schedule = []
-    keys = sorted({(r["family"], r["k_start"], r["k_end"]) for r in per_draw})
-    for fam, k0, k1 in keys:
-        mine = [r for r in per_draw if (r["family"], r["k_start"], r["k_end"]) == (fam, k0, k1)]
+    for key in sorted({_schedule_key(r) for r in per_draw}):
+        mine = [r for r in per_draw if _schedule_key(r) == key]
         nominal = [r for r in mine if r["draw"] == NOMINAL]
         draws = [r for r in mine if r["draw"] != NOMINAL]
         slopes = [r["slope"] for r in draws if math.isfinite(r["slope"])]
         mean, std, _ = _moments(slopes)
         per_schedule.append(
             {
-                "family": fam,
-                "k_start": k0,
-                "k_end": k1,
+                "family": key[0],
+                "variant": key[1],
+                "k_start": key[2],
+                "k_end": key[3],
                 "expected_slope": mine[0]["expected_slope"],
+                "error_law": mine[0]["error_law"],
                 "nominal_slope": nominal[0]["slope"] if nominal else math.nan,
                 "nominal_verdict": nominal[0]["verdict"] if nominal else "",
                 "draws": len(draws),
@@ -483,6 +684,45 @@ class NoiseSweepOutcome:
     files: dict[str, Path]
 
 
+def tabulate_ensemble(
+    spec: Spec, store_rows: Sequence[Mapping[str, Any]]
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]], list[dict[str, Any]]]:
+    """``(rows, per_point, per_draw, per_schedule)`` of the stored points of an ensemble.
+
+    :func:`read_ensemble_rows`, then :func:`summarize_ensemble` with the spec's
+    ``atol`` and the error law of its dynamics.
+    """
+    from .error_law import dynamics_kind
+
+    rows = read_ensemble_rows(store_rows)
+    per_point, per_draw, per_schedule = summarize_ensemble(
+        rows, atol=spec.numerics.atol, dynamics=dynamics_kind(spec)
+    )
+    return rows, per_point, per_draw, per_schedule
+
+
+#: File names of the ensemble tables, by table.
+TABLE_FILES = {
+    "ensemble": "ensemble.csv",
+    "summary": "ensemble-summary.csv",
+    "slopes": "ensemble-slopes.csv",
+    "schedules": "ensemble-schedules.csv",
+}
+
+
+def write_ensemble_tables(
+    out_dir: str | os.PathLike[str], tables: Sequence[Sequence[Mapping[str, Any]]]
+) -> dict[str, Path]:
+    """Write the four tables of :func:`tabulate_ensemble` (:data:`TABLE_FILES`), each atomically."""
+    from .control_noise import write_table_csv
+
+    folder = Path(out_dir)
+    files = {name: folder / file for name, file in TABLE_FILES.items()}
+    for name, table in zip(TABLE_FILES, tables, strict=True):
+        write_table_csv(files[name], table)
+    return files
+
+
 def check_draws(spec: Spec) -> None:
     """Build every draw's spec once, so that bad input stops the run before it starts."""
     noise = _noise(spec)
@@ -513,9 +753,6 @@ def run_noise_sweep(
         No ``[noise]`` section, amplitude errors on tabulated curves, a draw with a
         non-positive amplitude factor, or the engine's own input errors.
     """
-    import functools
-
-    from .control_noise import write_table_csv
     from .sweep import PointPlan, run_sweep
 
     check_draws(spec)
@@ -537,20 +774,6 @@ def run_noise_sweep(
         progress_stream=progress_stream,
         plan=plan,
     )
-    rows = read_ensemble_rows(outcome.rows)
-    per_point, per_draw, per_schedule = summarize_ensemble(rows, atol=spec.numerics.atol)
-    folder = Path(out_dir)
-    files = {
-        "ensemble": folder / "ensemble.csv",
-        "summary": folder / "ensemble-summary.csv",
-        "slopes": folder / "ensemble-slopes.csv",
-        "schedules": folder / "ensemble-schedules.csv",
-    }
-    for name, table in (
-        ("ensemble", rows),
-        ("summary", per_point),
-        ("slopes", per_draw),
-        ("schedules", per_schedule),
-    ):
-        write_table_csv(files[name], table)
+    rows, per_point, per_draw, per_schedule = tables = tabulate_ensemble(spec, outcome.rows)
+    files = write_ensemble_tables(out_dir, tables)
     return NoiseSweepOutcome(outcome, rows, per_point, per_draw, per_schedule, files)

@@ -52,6 +52,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import linalg
 
+from .metrics import trace_norm
 from .schedules import Schedule
 
 __all__ = [
@@ -118,11 +119,6 @@ class Prediction:
     def tf_for_error(self, eps: float) -> float:
         """Anneal time (ns) at which the predicted error equals ``eps``."""
         return (self.coefficient / float(eps)) ** (1.0 / (self.k + 1))
-
-
-def trace_norm(a: NDArray[Any]) -> float:
-    """Trace norm ||a||_1 (sum of singular values)."""
-    return float(np.sum(linalg.svdvals(a)))
 
 
 def _vec(a: NDArray[Any]) -> NDArray[Any]:
@@ -230,11 +226,9 @@ def one_sided_derivative(
 
 def _end_order(schedule: Schedule) -> tuple[int, float, str]:
     """(k, f^(k+1)(1), problem) for the schedule's end; problem is "" when fine."""
-    k_design = schedule.k_end
-    if schedule.family == "gevrey":
-        return 0, 0.0, "a gevrey schedule is flat to every order: no power law, no C_k"
-    if schedule.family == "linear":
-        k_design = 0
+    k_design = schedule.k_end  # linear: 0 (nothing is flat); gevrey: inf
+    if math.isinf(float(k_design)):
+        return 0, 0.0, f"a {schedule.family} schedule is flat to every order: no power law, no C_k"
     if not math.isfinite(float(k_design)) or float(k_design) != int(k_design):
         return (
             0,
@@ -324,7 +318,7 @@ def predict_from_generator(
 
 
 def predicted_coefficient(system: Any, schedule: Schedule, **kwargs: Any) -> Prediction:
-    """Predicted C_k for a :class:`schedforge.dynamics.System` and a schedule.
+    """Predicted C_k for a :class:`schedforge.system.System` and a schedule.
 
     Uses ``system.generator(s)`` and ``system.steady_state(s)``; a closed system
     has no steady state to relax to, and systems above :data:`MAX_DIM` levels

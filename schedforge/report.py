@@ -21,7 +21,6 @@ Every file is written atomically.
 from __future__ import annotations
 
 import base64
-import dataclasses
 import html
 import io
 import math
@@ -42,12 +41,12 @@ from .analysis import (
     ScalingFit,
     fit_points,
     format_fit_table,
-    read_points_csv,
     write_fit_csv,
 )
 from .error_law import COEFFICIENT_RTOL, RELAXATION_FACTOR, dynamics_kind, law_time_scale_ns
 from .errors import InputError
 from .fileio import atomic_write_bytes, atomic_write_text
+from .metrics import METRICS, fitted_metric
 from .plotting.scaling import (
     plot_error_vs_tf,
     plot_gap,
@@ -56,16 +55,15 @@ from .plotting.scaling import (
 )
 from .prediction import Prediction, predicted_coefficient
 from .schedules import schedule_for_point
+from .spec import spec_to_toml
 from .spec_model import Spec
+from .store import POINTS_CSV_NAME, read_points_csv
 from .units import GHZ_TO_RAD_PER_NS
 
 __all__ = [
     "CAUTION",
     "SweepAnalysis",
     "analyse_sweep_dir",
-    "load_sweep_spec",
-    "render_noise_report",
-    "spec_to_toml",
     "write_report",
 ]
 
@@ -112,54 +110,9 @@ class SweepAnalysis:
     table: str
 
 
-# -- spec copy -------------------------------------------------------------------
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "nan"
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-def spec_to_toml(spec: Spec) -> str:
-    """The spec as TOML text that :func:`schedforge.spec.load_spec` reads back.
-
-    Fields that are ``None`` (no such limit / section) are omitted.
-    """
-    data = dataclasses.asdict(spec)
-    lines = [
-        f"# spec copy written by schedforge {__version__}"
-        + (f" (from {spec.source})" if spec.source else ""),
-        f"version = {int(data['version'])}",
-    ]
-    for section in ("device", "problem", "bath", "schedule", "initial", "numerics", "sweep",
-                    "waveform"):  # fmt: skip
-        table = data.get(section)
-        if table is None:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        for key, value in table.items():
-            if value is None:
-                continue
-            if section == "sweep" and isinstance(value, list | tuple) and not value:
-                continue
-            lines.append(f"{key} = {_toml_value(value)}")
-    return "\n".join(lines) + "\n"
-
-
-def load_sweep_spec(out_dir: str | Path) -> Spec:
-    """The spec saved in a sweep folder (``DIR/spec.toml``)."""
+# -- the study's spec -------------------------------------------------------------
+def _spec_copy(out_dir: str | Path) -> Spec:
+    """The spec a sweep folder keeps beside its points (``DIR/spec.toml``)."""
     from .spec import load_spec
 
     path = Path(out_dir) / SPEC_NAME
@@ -174,21 +127,15 @@ def load_sweep_spec(out_dir: str | Path) -> Spec:
 
 # -- numbers for the figures ------------------------------------------------------
 def _predictions(
-    spec: Spec, keys: Sequence[tuple[str, float, float]]
+    spec: Spec, system: Any, keys: Sequence[tuple[str, float, float]]
 ) -> dict[tuple[str, float, float], Prediction]:
-    from .dynamics import System
-
-    system = System.from_spec(spec)
     out = {}
     for key in keys:
         out[key] = predicted_coefficient(system, schedule_for_point(spec, *key))
     return out
 
 
-def _gap_along_s(spec: Spec) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    from .dynamics import System
-
-    system = System.from_spec(spec)
+def _gap_along_s(system: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     s = np.linspace(0.0, 1.0, GAP_POINTS)
     spectral = []
     for si in s:
@@ -207,7 +154,10 @@ def _png(fig: Figure) -> bytes:
 
 
 def _make_figures(
-    spec: Spec, fits: Sequence[ScalingFit], keys: Sequence[tuple[str, float, float]]
+    spec: Spec,
+    system: Any,
+    fits: Sequence[ScalingFit],
+    keys: Sequence[tuple[str, float, float]],
 ) -> dict[str, Figure]:
     figs: dict[str, Figure] = {}
     for fit in fits:
@@ -215,7 +165,7 @@ def _make_figures(
         figs[name] = plot_error_vs_tf(fit)
     figs["local_slopes"] = plot_local_slopes(fits)
     figs["schedules"] = plot_schedule_derivatives([schedule_for_point(spec, *k) for k in keys])
-    s, spectral, lgap = _gap_along_s(spec)
+    s, spectral, lgap = _gap_along_s(system)
     figs["gap"] = plot_gap(s, spectral, lgap)
     return figs
 
@@ -272,9 +222,7 @@ _HEADERS = {
     "coefficient_predicted": "C<sub>k</sub> predicted (ns<sup>p</sup>)",
     "C_k": "C<sub>k</sub>",
     "tf_ns": "tf (ns)",
-    "trace_distance": "trace distance",
-    "ground_infidelity": "ground infidelity",
-    "excess_energy_ghz": "excess energy (GHz)",
+    **{name: html.escape(m.heading) for name, m in METRICS.items()},
     "wall_s": "wall time (s)",
 }
 _MESSAGE_COLUMNS = ("message", "warnings")
@@ -373,8 +321,13 @@ def render_report(
     *,
     title: str = "schedforge sweep report",
     notes: Sequence[str] = (),
+    sections: Sequence[str] = (),
 ) -> str:
-    """The report as one self-contained HTML string (plots as base64 PNG)."""
+    """The report as one self-contained HTML string (plots as base64 PNG).
+
+    ``sections`` are HTML fragments of other studies of the same points (e.g. the
+    control-error section of :mod:`schedforge.noise_report`), placed first.
+    """
     now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     fit_cols = ["family", "variant", "k_start", "k_end", "error_law", "slope", "slope_stderr",
                 "expected_slope", "regime_tf_ns", "n_points",
@@ -385,9 +338,8 @@ def render_report(
          "unit": f"ns^{p.k + 1}" if p.ok else "", "status": p.status, "message": p.message}
         for k, p in sorted(predictions.items())
     ]  # fmt: skip
-    point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", "trace_distance",
-                  "ground_infidelity", "excess_energy_ghz", "status", "wall_s",
-                  "warnings"]  # fmt: skip
+    point_cols = ["family", "variant", "k_start", "k_end", "tf_ns", *METRICS, "status",
+                  "wall_s", "warnings"]  # fmt: skip
     warned = [r for r in rows if r.get("warnings")]
     error_imgs = [_img(n, b) for n, b in pngs.items() if n.startswith("error_")]
     parts = [
@@ -402,6 +354,7 @@ def render_report(
         )
     parts.append(f'<p class="summary"><b>Points.</b> {summary}.</p>')
     parts += [f"<p>{html.escape(n)}</p>" for n in notes]
+    parts += list(sections)
     agrees = any(f.verdict == "agrees" for f in fits)
     parts += [
         "<h2>Scaling fits</h2>",
@@ -476,10 +429,11 @@ def analyse_sweep_dir(
     spec: Spec | None = None,
     *,
     rows: Sequence[Mapping[str, Any]] | None = None,
-    metric: str = "trace_distance",
+    metric: str | None = None,
     progress: Callable[[str], None] | None = None,
     title: str = "schedforge sweep report",
     notes: Sequence[str] = (),
+    sections: Sequence[str] = (),
 ) -> SweepAnalysis:
     """Fit a finished sweep folder and write fit.csv, the plots, spec.toml and report.html.
 
@@ -491,12 +445,14 @@ def analyse_sweep_dir(
         The sweep's spec; read from ``DIR/spec.toml`` when omitted.
     rows : sequence of mapping, optional
         The points; read from ``DIR/points.csv`` when omitted.
-    metric : str
-        Error column to analyse.
+    metric : str, optional
+        Error column to analyse (default: :func:`schedforge.metrics.fitted_metric`).
     progress : callable, optional
         Receives one line of text per step.
     title, notes : str
         Report heading and extra paragraphs.
+    sections : sequence of str
+        HTML fragments placed first in the report (see :func:`render_report`).
 
     Returns
     -------
@@ -505,18 +461,18 @@ def analyse_sweep_dir(
     say = progress or (lambda _m: None)
     folder = Path(out_dir)
     if spec is None:
-        spec = load_sweep_spec(folder)
+        spec = _spec_copy(folder)
     if rows is None:
-        rows = read_points_csv(folder / "points.csv")
+        rows = read_points_csv(folder / POINTS_CSV_NAME)
     rows = [dict(r) for r in rows]
     spec_path = folder / SPEC_NAME
     atomic_write_text(spec_path, spec_to_toml(spec))
     keys = sorted({(str(r["family"]), float(r["k_start"]), float(r["k_end"])) for r in rows})
-    say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
-    predictions = _predictions(spec, keys)
-    from .dynamics import System, curve_warnings
+    from .system import System, curve_warnings
 
-    system = System.from_spec(spec)
+    system = System.from_spec(spec)  # built once: predictions, warnings, law, gap plot
+    say(f"analysis: predicting C_k for {len(keys)} schedule(s) from the final generator")
+    predictions = _predictions(spec, system, keys)
     warnings = [f"Pre-flight warning: {w}" for w in system.preflight()]
     for k_end in sorted({k[2] for k in keys}):  # tabulated device curves: data quality
         for w in curve_warnings(system.hamiltonian.curves, k_end):
@@ -527,14 +483,14 @@ def analyse_sweep_dir(
     fits = fit_points(
         rows,
         atol=spec.numerics.atol,
-        metric=metric,
+        metric=metric or fitted_metric(),
         predicted={k: p.coefficient for k, p in predictions.items()},
         dynamics=dynamics,
         time_scale_ns=time_scale,
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")
-    figs = _make_figures(spec, fits, keys)
+    figs = _make_figures(spec, system, fits, keys)
     pngs = {name: _png(fig) for name, fig in figs.items()}
     plot_dir = folder / PLOTS_DIR
     plot_dir.mkdir(exist_ok=True)
@@ -543,7 +499,14 @@ def analyse_sweep_dir(
         plot_paths[name] = plot_dir / f"{name}.png"
         atomic_write_bytes(plot_paths[name], data)
     text = render_report(
-        spec, fits, rows, pngs, predictions, title=title, notes=[*notes, *warnings]
+        spec,
+        fits,
+        rows,
+        pngs,
+        predictions,
+        title=title,
+        notes=[*notes, *warnings],
+        sections=sections,
     )
     report_path = write_report(folder / REPORT_NAME, text)
     say(f"analysis: wrote {report_path}")
@@ -556,127 +519,3 @@ def analyse_sweep_dir(
         plots=plot_paths,
         table=format_fit_table(fits),
     )
-
-
-# -- control errors: the noise-ensemble report (issue 17) -------------------------
-def _label_schedule(fam: str, k0: float, k1: float) -> str:
-    return fam if fam == "linear" else f"{fam} k={k0:g}/{k1:g}"
-
-
-def noise_figures(outcome: Any, precision: Any = None) -> dict[str, bytes]:
-    """PNG figures of a noise ensemble: histograms at the longest tf, spread vs tf, and
-    the probability curve of the static study (when ``precision`` is given)."""
-    from .plotting.noise import plot_ensemble_histograms, plot_flip_curve, plot_spread_vs_tf
-
-    rows = outcome.rows
-    pngs: dict[str, bytes] = {}
-    draws = [r for r in rows if r["draw"] >= 0]
-    if draws:
-        tf_max = max(r["tf_ns"] for r in draws)
-        for key, xlabel, log in (
-            ("trace_distance", "trace distance to the noisy steady state", True),
-            ("intended_ground_probability", "probability of the intended ground space", False),
-        ):
-            values: dict[str, list[float]] = {}
-            for r in draws:
-                if r["tf_ns"] == tf_max:
-                    name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-                    values.setdefault(name, []).append(r[key])
-            fig = plot_ensemble_histograms(values, f"{xlabel} (tf = {tf_max:g} ns)", log=log)
-            pngs[f"histogram_{key}"] = _png(fig)
-        nominal = {
-            (r["family"], r["k_start"], r["k_end"]): r["nominal_trace_distance"]
-            for r in outcome.per_point
-            if r["tf_ns"] == tf_max
-        }
-        relative: dict[str, list[float]] = {}
-        for r in draws:
-            ref = nominal.get((r["family"], r["k_start"], r["k_end"]), math.nan)
-            if r["tf_ns"] == tf_max and ref > 0:
-                name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-                relative.setdefault(name, []).append(r["trace_distance"] / ref - 1.0)
-        fig = plot_ensemble_histograms(
-            relative,
-            f"trace distance / noiseless - 1 (tf = {tf_max:g} ns)",
-            log=False,
-        )
-        pngs["histogram_relative_trace_distance"] = _png(fig)
-    for key, ylabel in (
-        ("trace_distance_spread", "spread (std / mean) of the trace distance"),
-        ("intended_probability_spread", "spread of the intended ground-state probability"),
-    ):
-        series: dict[str, tuple[list[float], list[float]]] = {}
-        for r in outcome.per_point:
-            name = _label_schedule(r["family"], r["k_start"], r["k_end"])
-            tf, vals = series.setdefault(name, ([], []))
-            tf.append(r["tf_ns"])
-            vals.append(r[key])
-        pngs[f"spread_{key}"] = _png(plot_spread_vs_tf(series, ylabel))
-    if precision is not None:
-        pngs["precision_curve"] = _png(plot_flip_curve(precision))
-    return pngs
-
-
-def render_noise_report(
-    spec: Spec,
-    outcome: Any,
-    pngs: Mapping[str, bytes],
-    *,
-    notes: Sequence[str] = (),
-    title: str = "schedforge noise-ensemble report",
-) -> str:
-    """The noise-ensemble report as one self-contained HTML string.
-
-    Parameters
-    ----------
-    spec : Spec
-        With its ``[noise]`` section.
-    outcome : NoiseSweepOutcome
-        From :func:`schedforge.noise_ensemble.run_noise_sweep`.
-    pngs : mapping
-        From :func:`noise_figures`.
-    notes : sequence of str
-        Extra paragraphs (failed points, fallbacks...).
-    """
-    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    noise = spec.noise
-    model = (
-        ""
-        if noise is None
-        else (
-            f"Noise model: Gaussian errors on {', '.join(noise.terms) or 'no coefficient'} with "
-            f"standard deviation {noise.level:g} of the largest |h_i|, |J_ij|; relative "
-            f"amplitude errors of A(s) and B(s) with standard deviation "
-            f"{noise.amplitude_level:g}; {noise.draws} draws from seed {noise.seed}."
-        )
-    )
-    sched_cols = ["family", "k_start", "k_end", "expected_slope", "nominal_slope",
-                  "nominal_verdict", "draws", "fitted", "agrees", "slope_mean",
-                  "slope_std"]  # fmt: skip
-    point_cols = ["family", "k_start", "k_end", "tf_ns", "draws", "ok",
-                  "nominal_trace_distance", "trace_distance_mean", "trace_distance_std",
-                  "trace_distance_spread", "nominal_intended_probability",
-                  "intended_probability_mean", "intended_probability_std",
-                  "intended_probability_spread"]  # fmt: skip
-    parts = [
-        *_page_head(title, spec, now),
-        f"<p>{html.escape(model)}</p>",
-    ]
-    parts += [f"<p>{html.escape(n)}</p>" for n in notes]
-    parts += [
-        "<h2>Control errors: which schedule degrades least</h2>",
-        "<p>Trace distance: to the final steady state of each draw's own (noisy) "
-        "problem. Intended ground-state probability: weight of rho(tf) on the ground "
-        "space of the noiseless H(1). Spread: standard deviation over mean across the "
-        "draws whose simulation succeeded. Per draw, the trace distance against tf is "
-        "fitted like a sweep (<i>agrees</i>: the designed slope -(k_end + 1) survives "
-        "for that draw).</p>",
-        "<h3>Error slope per draw</h3>",
-        _html_table(sched_cols, outcome.per_schedule, ("family", "nominal_verdict")),
-        "<h3>Distribution per schedule and anneal time</h3>",
-        _html_table(point_cols, outcome.per_point, ("family",)),
-        "<h3>Figures</h3>",
-    ]
-    parts += [_img(name, png) for name, png in pngs.items()]
-    parts.append("</body></html>")
-    return "\n".join(parts)

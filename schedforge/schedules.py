@@ -36,7 +36,7 @@ import numbers
 import sys
 from abc import ABC, abstractmethod
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 from numpy.polynomial import chebyshev as _cheb
@@ -58,9 +58,12 @@ __all__ = [
     "PointsSchedule",
     "PolySchedule",
     "Schedule",
+    "family_class",
     "make_schedule",
     "schedule_for_point",
     "schedule_from_spec",
+    "schedule_grid",
+    "schedule_label",
 ]
 
 #: Number of derivatives :meth:`Schedule.flatness` checks at an infinitely flat end.
@@ -174,6 +177,20 @@ class Schedule(ABC):
     continuity : int or None
         The schedule is C^continuity on [0, 1]; ``None`` means infinitely smooth
         (real k of ``beta`` aside, whose high derivatives blow up at the ends only).
+
+    Family traits (class attributes and class methods, so that code holding only a
+    family name asks :func:`family_class` instead of comparing names):
+
+    has_k : bool
+        The family has flatness orders a study varies (``linear``: nothing is flat).
+    k_end_varies : bool
+        The ``k_end`` parameter changes the shape (``linear`` and ``gevrey``: no; a
+        study computes them once per tf, recorded with ``k_end = 0``).
+    end_orders(k_start, k_end)
+        The real flatness orders at the two ends for these parameters (``inf``:
+        flat to every order); :mod:`schedforge.error_law` reads the law from them.
+    grid_orders(k_start, k_end)
+        The (k_start, k_end) a study records for these parameters.
     """
 
     family: str = ""
@@ -182,6 +199,21 @@ class Schedule(ABC):
     max_order: int | None = None
     knots: tuple[float, ...] = ()
     continuity: int | None = None
+    has_k: ClassVar[bool] = True
+    k_end_varies: ClassVar[bool] = True
+
+    # -- family traits ------------------------------------------------------
+    @classmethod
+    def end_orders(cls, k_start: float, k_end: float) -> tuple[float, float]:
+        """Real flatness orders (k_start, k_end) at the two ends for these parameters."""
+        return float(k_start), float(k_end)
+
+    @classmethod
+    def grid_orders(cls, k_start: float, k_end: float) -> tuple[float, float]:
+        """The (k_start, k_end) a study records: 0 for an order the family ignores."""
+        if not cls.has_k:
+            return 0.0, 0.0
+        return float(k_start), (float(k_end) if cls.k_end_varies else 0.0)
 
     # -- public API ---------------------------------------------------------
     def __call__(self, x: ArrayLike) -> NDArray[np.float64]:
@@ -314,6 +346,13 @@ class LinearSchedule(Schedule):
     """f(x) = x: the baseline, no flat end.  C^infinity (``continuity = None``)."""
 
     family = "linear"
+    has_k = False
+    k_end_varies = False
+
+    @classmethod
+    def end_orders(cls, k_start: float, k_end: float) -> tuple[float, float]:
+        """Nothing is flat: (0, 0) whatever the parameters."""
+        return 0.0, 0.0
 
     def _derivatives(self, x: NDArray[np.float64], order: int) -> NDArray[np.float64]:
         out = np.zeros((order + 1, x.size))
@@ -853,6 +892,12 @@ class GevreySchedule(Schedule):
 
     family = "gevrey"
     max_order = 30
+    k_end_varies = False
+
+    @classmethod
+    def end_orders(cls, k_start: float, k_end: float) -> tuple[float, float]:
+        """Flat to every order at the end; at the start too when ``k_start > 0``."""
+        return (math.inf if float(k_start) > 0 else 0.0), math.inf
 
     def __init__(self, flat_start: bool = False) -> None:
         self.both_ends = bool(flat_start)
@@ -924,6 +969,61 @@ FAMILIES: dict[str, type[Schedule]] = {
 _PARAMETERS = ("k_start", "k_end", "tail", "points", "flat_start", "base")
 
 
+def family_class(family: str) -> type[Schedule]:
+    """The class of a named family, whose traits (``has_k``, ``end_orders``...) apply.
+
+    Raises
+    ------
+    InputError
+        Unknown family (naming ``schedule.family`` and the known ones).
+    """
+    try:
+        return FAMILIES[family]
+    except (KeyError, TypeError):
+        known = ", ".join(sorted(FAMILIES))
+        raise InputError("schedule.family", f"must be one of {known}; got {family!r}") from None
+
+
+def schedule_label(family: str, k_start: float, k_end: float) -> str:
+    """Short text for a study's schedule: ``"beta k=0/2"``, or ``"linear"`` for a
+    family without flatness orders (names no family has are shown with their k)."""
+    if not FAMILIES.get(family, Schedule).has_k:
+        return family
+    return f"{family} k={float(k_start):g}/{float(k_end):g}"
+
+
+def schedule_grid(
+    spec: Any,
+    *,
+    families: Sequence[str] | None = None,
+    k_ends: Sequence[float] | None = None,
+) -> list[tuple[str, float, float]]:
+    """The distinct schedules (family, k_start, k_end) of a study, sorted.
+
+    The one place where a study's family x k_end grid is expanded (sweep points,
+    budget candidates, spec checks).  Families default to the spec's
+    ``sweep.family`` or else ``schedule.family``; k_end to ``sweep.k_end`` or else
+    ``schedule.k_end``; k_start is ``schedule.k_start``.  Each family records its
+    orders through :meth:`Schedule.grid_orders`: ``linear`` once with
+    ``k_start = k_end = 0``, ``gevrey`` once per k_start with ``k_end = 0``.
+
+    Raises
+    ------
+    InputError
+        An unknown family.
+    """
+    grid = spec.sweep
+    fams = families or (grid.family if grid and grid.family else None) or (spec.schedule.family,)
+    ks = k_ends or (grid.k_end if grid and grid.k_end else None) or (spec.schedule.k_end,)
+    k_start = spec.schedule.k_start
+    out = {
+        (family, *family_class(family).grid_orders(k_start, k_end))
+        for family in fams
+        for k_end in ks
+    }
+    return sorted(out)
+
+
 def make_schedule(family: str, **params: Any) -> Schedule:
     """Build a schedule of a named family.
 
@@ -943,15 +1043,13 @@ def make_schedule(family: str, **params: Any) -> Schedule:
     InputError
         Unknown family or parameter, or invalid parameter values.
     """
-    if family not in FAMILIES:
-        known = ", ".join(sorted(FAMILIES))
-        raise InputError("schedule.family", f"must be one of {known}; got {family!r}")
+    cls = family_class(family)
     for name in params:
         if name not in _PARAMETERS:
             raise InputError(
                 f"schedule.{name}", f"is not a schedule parameter ({', '.join(_PARAMETERS)})"
             )
-    return FAMILIES[family].from_params(**params)
+    return cls.from_params(**params)
 
 
 def schedule_from_spec(sched: ScheduleSpec) -> Schedule:

@@ -17,20 +17,24 @@ defaults of :mod:`schedforge.spec_model`.
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
 import os
 import tomllib
+import typing
 from collections.abc import Callable, Sequence
-from datetime import date, datetime, time
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from . import checks
+from .bath import COUPLINGS, SPECTRA, check_bath
 from .errors import InputError
+from .hamiltonian import check_problem
+from .limits import MAX_COEFFICIENT, MAX_ENERGY_GHZ, MAX_QUBITS, MIN_CUTOFF_GHZ
 from .spec_model import (
+    INITIAL_STATES,
     BathSpec,
     DeviceSpec,
     InitialSpec,
@@ -43,6 +47,7 @@ from .spec_model import (
     SweepSpec,
     WaveformSpec,
 )
+from .waveform import FILTERS, check_waveform
 
 __all__ = [
     "BUILTIN_PREFIX",
@@ -57,30 +62,19 @@ __all__ = [
     "builtin_scenarios",
     "load_spec",
     "parse_spec",
+    "spec_from_dict",
+    "spec_to_toml",
 ]
 
 #: The only spec format version this release reads.
 SPEC_VERSION = 1
 #: Prefix selecting a packaged scenario in :func:`load_spec`.
 BUILTIN_PREFIX = "builtin:"
-#: Largest number of qubits a spec may declare: 8 qubits need about 5.3 GB to set up
-#: (measured) and hours per point; 9 would need about 85 GB (see schedforge.limits).
-MAX_QUBITS = 8
 #: Largest number of tf values of a sweep, as a ``{start, stop, num}`` grid or an
 #: explicit list (guards against typos).
 MAX_SWEEP_GRID = 1000
 #: Largest spec file read (a spec is a few kB; 1 MiB leaves room for long lists).
 MAX_SPEC_BYTES = 1024 * 1024
-#: Largest energy scale (A0_ghz, B0_ghz, cutoff_ghz) in GHz.  Qubit energies are of
-#: order 1-100 GHz (common practice, no source); far beyond, numbers stop being energies
-#: and products of them overflow.
-MAX_ENERGY_GHZ = 1e6
-#: Smallest bath cutoff in GHz (1 kHz): below it every relaxation rate is zero.
-MIN_CUTOFF_GHZ = 1e-6
-#: Largest |h_i|, |J_ij| (dimensionless multipliers of B(s)).
-MAX_COEFFICIENT = 1e6
-#: Longest text of a value echoed in a message.
-_ECHO_CHARS = 60
 
 _SECTIONS: dict[str, type] = {
     "device": DeviceSpec,
@@ -95,40 +89,18 @@ _SECTIONS: dict[str, type] = {
 }
 _TOP_KEYS = ("version", *_SECTIONS)
 
-SPECTRA = ("ohmic", "none")
-COUPLINGS = ("x", "y", "z")
-INITIAL_STATES = ("gibbs", "ground")
-FILTERS = ("gaussian", "single-pole")
-
 
 # ---------------------------------------------------------------------------
-# value readers
+# value readers (the checks shared with the model's validators, and TOML shapes)
 # ---------------------------------------------------------------------------
-def _toml_type(value: Any) -> str:
-    """Name of a value's TOML type, for messages."""
-    if isinstance(value, bool):
-        return "boolean"
-    if isinstance(value, int):
-        return "integer"
-    if isinstance(value, float):
-        return "float"
-    if isinstance(value, str):
-        return "string"
-    if isinstance(value, list):
-        return "array"
-    if isinstance(value, dict):
-        return "table"
-    if isinstance(value, datetime | date | time):
-        return "date/time"
-    return type(value).__name__
-
-
-def _clip(value: Any) -> str:
-    """``repr(value)``, cut to a short length for messages."""
-    text = repr(value)
-    if len(text) > _ECHO_CHARS:
-        text = text[: _ECHO_CHARS - 3] + "..."
-    return text
+_ECHO_CHARS = checks.ECHO_CHARS
+_clip = checks.clip
+_shown = checks.shown
+_number = checks.number
+_integer = checks.integer
+_string = checks.choice
+_boolean = checks.boolean
+_suggest = checks.suggest
 
 
 def _clip_path(path: Any) -> str:
@@ -137,83 +109,10 @@ def _clip_path(path: Any) -> str:
     return repr(text if len(text) <= 300 else "..." + text[-297:])
 
 
-def _shown(value: Any) -> str:
-    """A value as shown in a message: its TOML type and a short repr."""
-    return f"{_toml_type(value)} {_clip(value)}"
-
-
-def _is_number(value: Any) -> bool:
-    return isinstance(value, int | float) and not isinstance(value, bool)
-
-
-def _number(
-    value: Any,
-    path: str,
-    *,
-    gt: float | None = None,
-    ge: float | None = None,
-    lt: float | None = None,
-    le: float | None = None,
-) -> float:
-    """Check a finite number within bounds; return it as ``float``."""
-    if not _is_number(value):
-        raise InputError(path, f"must be a number, got {_shown(value)}")
-    x = float(value)
-    if not math.isfinite(x):
-        raise InputError(path, f"must be a finite number, got {_clip(value)}")
-    bounds = []
-    if gt is not None:
-        bounds.append(f"> {gt:g}")
-    if ge is not None:
-        bounds.append(f">= {ge:g}")
-    if lt is not None:
-        bounds.append(f"< {lt:g}")
-    if le is not None:
-        bounds.append(f"<= {le:g}")
-    ok = (
-        (gt is None or x > gt)
-        and (ge is None or x >= ge)
-        and (lt is None or x < lt)
-        and (le is None or x <= le)
-    )
-    if not ok:
-        raise InputError(path, f"must be a number {' and '.join(bounds)}, got {_clip(value)}")
-    return x
-
-
 def _order(value: Any, path: str) -> float:
     """A derivative-count k >= 0 (integer or real); integers stay integers."""
     x = _number(value, path, ge=0)
     return value if isinstance(value, int) else x
-
-
-def _integer(value: Any, path: str, *, ge: int | None = None, le: int | None = None) -> int:
-    """Check an integer (not a boolean, not a float) within bounds."""
-    if not isinstance(value, int) or isinstance(value, bool):
-        raise InputError(path, f"must be an integer, got {_shown(value)}")
-    if (ge is not None and value < ge) or (le is not None and value > le):
-        lo = "" if ge is None else f">= {ge}"
-        hi = "" if le is None else f"<= {le}"
-        rule = " and ".join(p for p in (lo, hi) if p)
-        raise InputError(path, f"must be an integer {rule}, got {_clip(value)}")
-    return value
-
-
-def _string(value: Any, path: str, choices: Sequence[str] | None = None) -> str:
-    """Check a string, optionally one of ``choices`` (with a suggestion for typos)."""
-    if not isinstance(value, str):
-        raise InputError(path, f"must be a string, got {_shown(value)}")
-    if choices is not None and value not in choices:
-        known = ", ".join(repr(c) for c in choices)
-        hint = _suggest(value, choices)
-        raise InputError(path, f"must be one of {known}; got {_clip(value)}{hint}")
-    return value
-
-
-def _boolean(value: Any, path: str) -> bool:
-    if not isinstance(value, bool):
-        raise InputError(path, f"must be true or false, got {_shown(value)}")
-    return value
 
 
 def _array(value: Any, path: str, *, nonempty: bool = False) -> list[Any]:
@@ -228,18 +127,6 @@ def _table(value: Any, path: str) -> dict[str, Any]:
     if not isinstance(value, dict):
         raise InputError(path, f"must be a table, got {_shown(value)}")
     return value
-
-
-def _suggest(word: str, known: Sequence[str]) -> str:
-    """``"; did you mean `x`?"`` for the nearest known word, or ``""``."""
-    if len(word) > 4 * _ECHO_CHARS:
-        return ""
-    same_letters = [k for k in known if k.lower() == word.lower()]
-    close = same_letters or difflib.get_close_matches(word, list(known), n=1, cutoff=0.6)
-    if not close:  # also compare without case ("Beta" -> "beta")
-        lowered = {k.lower(): k for k in known}
-        close = [lowered[c] for c in difflib.get_close_matches(word.lower(), list(lowered), n=1)]
-    return f"; did you mean `{close[0]}`?" if close else ""
 
 
 def _check_keys(table: dict[str, Any], known: Sequence[str], where: str) -> None:
@@ -341,55 +228,13 @@ def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
     return DeviceSpec(**kw)
 
 
-def _h_list(value: Any, path: str) -> tuple[float, ...]:
-    items = _array(value, path)
-    return tuple(_coefficient(v, f"{path}[{i}]") for i, v in enumerate(items))
-
-
-def _coefficient(value: Any, path: str) -> float:
-    return _number(value, path, ge=-MAX_COEFFICIENT, le=MAX_COEFFICIENT)
-
-
-def _j_list(value: Any, path: str) -> tuple[tuple[int, int, float], ...]:
-    items = _array(value, path)
-    out = []
-    for n, entry in enumerate(items):
-        where = f"{path}[{n}]"
-        if not isinstance(entry, list) or len(entry) != 3:
-            raise InputError(where, f"must be an array [i, j, J_ij], got {_shown(entry)}")
-        i = _integer(entry[0], f"{where}[0]", ge=0)
-        j = _integer(entry[1], f"{where}[1]", ge=0)
-        out.append((i, j, _coefficient(entry[2], f"{where}[2]")))
-    return tuple(out)
-
-
 def _problem(data: dict[str, Any]) -> ProblemSpec:
     kw = _section(
         data,
         "problem",
-        {
-            "qubits": lambda v, p: _integer(v, p, ge=1, le=MAX_QUBITS),
-            "h": _h_list,
-            "J": _j_list,
-        },
+        {"qubits": lambda v, p: v, "h": _array, "J": _array},
     )
-    spec = ProblemSpec(**kw)
-    n = spec.qubits
-    if len(spec.h) != n:
-        raise InputError("problem.h", f"must have one entry per qubit ({n}), got {len(spec.h)}")
-    pairs: set[tuple[int, int]] = set()
-    for idx, (i, j, _) in enumerate(spec.J):
-        if not 0 <= i < j < n:
-            raise InputError(
-                f"problem.J[{idx}]",
-                f"must have qubit indices 0 <= i < j < qubits ({n}), got i={i}, j={j}",
-            )
-        if (i, j) in pairs:
-            raise InputError(
-                f"problem.J[{idx}]", f"repeats the pair ({i}, {j}); give each pair once"
-            )
-        pairs.add((i, j))
-    return spec
+    return check_problem(ProblemSpec(**kw))  # the section's rules, shared with Python
 
 
 def _bath(data: dict[str, Any]) -> BathSpec:
@@ -397,15 +242,15 @@ def _bath(data: dict[str, Any]) -> BathSpec:
         data,
         "bath",
         {
-            "spectrum": lambda v, p: _string(v, p, SPECTRA),
-            "coupling": lambda v, p: _string(v, p, COUPLINGS),
-            "eta": lambda v, p: _number(v, p, ge=0),
-            "cutoff_ghz": lambda v, p: _number(v, p, ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ),
-            "temperature_mk": _positive,
+            "spectrum": _string,
+            "coupling": _string,
+            "eta": _number,
+            "cutoff_ghz": _number,
+            "temperature_mk": _number,
             "lamb_shift": _boolean,
         },
     )
-    return BathSpec(**kw)
+    return check_bath(BathSpec(**kw))  # the section's rules, shared with Python
 
 
 def _points(value: Any, path: str) -> tuple[tuple[float, float], ...]:
@@ -534,20 +379,9 @@ def _sweep(data: dict[str, Any]) -> SweepSpec | None:
 def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
     if "waveform" not in data:
         return None
-    kw = _section(
-        data,
-        "waveform",
-        {
-            "sample_rate_gsps": _positive,
-            "dac_bits": lambda v, p: _integer(v, p, ge=1, le=32),
-            "bandwidth_mhz": _positive,
-            "filter": lambda v, p: _string(v, p, FILTERS),
-            "max_slope_per_ns": _positive,
-            "breakpoints": lambda v, p: _integer(v, p, ge=2),
-            "breakpoint_tolerance": _positive,
-        },
-    )
-    return WaveformSpec(**kw)
+    names = [f.name for f in dataclasses.fields(WaveformSpec)]
+    kw = _section(data, "waveform", dict.fromkeys(names, lambda v, p: v))
+    return check_waveform(WaveformSpec(**kw))  # the section's rules, shared with Python
 
 
 # -- [noise]: control errors (issue 17) -------------------------------------------
@@ -626,21 +460,21 @@ def _noise(data: dict[str, Any]) -> NoiseSpec | None:
 
 
 def _check_schedules(spec: Spec) -> None:
-    """Build the spec's schedule, and every sweep variant, to apply each family's own rules."""
-    from .schedules import schedule_from_spec
+    """Build the spec's schedule, and every schedule of the sweep, to apply each family's
+    own rules (the sweep's schedules from :func:`schedforge.schedules.schedule_grid`)."""
+    from .schedules import schedule_from_spec, schedule_grid
 
     schedule_from_spec(spec.schedule)
     if spec.sweep is None:
         return
-    for family in spec.sweep.family or (spec.schedule.family,):
-        for k_end in spec.sweep.k_end or (spec.schedule.k_end,):
-            variant = spec.with_schedule(family=family, k_end=k_end)
-            try:
-                schedule_from_spec(variant.schedule)
-            except InputError as err:
-                raise InputError(
-                    err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end})"
-                ) from None
+    for family, k_start, k_end in schedule_grid(spec):
+        variant = spec.with_schedule(family=family, k_start=k_start, k_end=k_end)
+        try:
+            schedule_from_spec(variant.schedule)
+        except InputError as err:
+            raise InputError(
+                err.field, f"{err.rule} (in the sweep, family = {family!r}, k_end = {k_end:g})"
+            ) from None
 
 
 # ---------------------------------------------------------------------------
@@ -780,6 +614,10 @@ def load_spec(path_or_name: str | os.PathLike[str]) -> Spec:
     return parse_spec(data, path.resolve().parent, source=str(path))
 
 
+_SPECTRA_TEXT = "\n".join(f'#   "{k.name}": {k.summary}' for k in SPECTRA.values())
+_COUPLINGS_TEXT = ", ".join(COUPLINGS)
+_FILTERS_TEXT = " or ".join(f'"{name}"' for name in FILTERS)
+
 TEMPLATE = f"""\
 # schedforge study spec.  Units: energies E/h in GHz, times in ns, temperatures in mK.
 # Every key below shows its default value; delete what you do not need.
@@ -802,8 +640,11 @@ h = [0.7]          # one entry per qubit
 J = []             # couplings as [i, j, J_ij] with 0 <= i < j < qubits, e.g. [[0, 1, -1.0]]
 
 [bath]
-spectrum = "ohmic"       # "ohmic", or "none" for a closed system
-coupling = "x"           # each qubit has its own bath, coupled through this Pauli: x, y or z
+# spectrum, the bath's spectral density:
+{_SPECTRA_TEXT}
+spectrum = "ohmic"
+# coupling: each qubit has its own bath, coupled through this Pauli ({_COUPLINGS_TEXT})
+coupling = "x"
 eta = 1e-4               # dimensionless coupling strength eta*g^2 (>= 0)
 cutoff_ghz = 8.0         # ohmic cutoff frequency
 temperature_mk = 12.0
@@ -859,7 +700,7 @@ atol = 1e-14
 # sample_rate_gsps = 1.0
 # dac_bits = 14
 # bandwidth_mhz = 200.0
-# filter = "gaussian"                    # or "single-pole"
+# filter = "gaussian"                    # {_FILTERS_TEXT}
 # max_slope_per_ns = 0.01
 # breakpoints = 32
 # breakpoint_tolerance = 1e-4
@@ -883,3 +724,93 @@ atol = 1e-14
 # instances = 3
 # seed = 0
 """
+
+
+# ---------------------------------------------------------------------------
+# writing specs back: dict (the store's run record) and TOML (a study's spec.toml)
+# ---------------------------------------------------------------------------
+def _nested_dataclass(annotation: Any) -> type | None:
+    """The dataclass a field holds (``X`` or ``X | None``), else None."""
+    if dataclasses.is_dataclass(annotation):
+        return annotation  # type: ignore[return-value]
+    return next((a for a in typing.get_args(annotation) if dataclasses.is_dataclass(a)), None)
+
+
+def _from_plain(value: Any, annotation: Any) -> Any:
+    nested = _nested_dataclass(annotation)
+    if isinstance(value, dict) and nested is not None:
+        hints = typing.get_type_hints(nested)
+        return nested(**{k: _from_plain(v, hints.get(k)) for k, v in value.items()})
+    if isinstance(value, list):
+        return tuple(_from_plain(v, None) for v in value)
+    return value
+
+
+def spec_from_dict(data: dict[str, Any]) -> Spec:
+    """Rebuild a :class:`Spec` from :func:`dataclasses.asdict` output (e.g. read back from JSON).
+
+    For specs this package wrote itself (the store's record of a run): the values are
+    trusted, not validated again; lists become tuples and nested tables dataclasses.
+    Fields missing from an older record take their defaults.
+    """
+    hints = typing.get_type_hints(Spec)
+    sections = {
+        name: None if data.get(name) is None else _from_plain(data[name], hints[name])
+        for name in _SECTIONS
+    }
+    return Spec(version=data["version"], source=data.get("source"), **sections)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def _toml_table(name: str, table: dict[str, Any]) -> list[str]:
+    lines = ["", f"[{name}]"]
+    nested = []
+    for key, value in table.items():
+        if value is None:
+            continue
+        if name == "sweep" and isinstance(value, list | tuple) and not value:
+            continue
+        if isinstance(value, dict):
+            nested.append((key, value))
+            continue
+        lines.append(f"{key} = {_toml_value(value)}")
+    for key, value in nested:
+        lines += _toml_table(f"{name}.{key}", value)
+    return lines
+
+
+def spec_to_toml(spec: Spec) -> str:
+    """The spec as TOML text that :func:`load_spec` reads back to an equal spec.
+
+    Fields that are ``None`` (no such limit / section) and empty sweep lists are
+    omitted; nested tables (``[noise.problems]``) follow their section.
+    """
+    from . import __version__
+
+    data = dataclasses.asdict(spec)
+    lines = [
+        f"# spec copy written by schedforge {__version__}"
+        + (f" (from {spec.source})" if spec.source else ""),
+        f"version = {int(data['version'])}",
+    ]
+    for section in _SECTIONS:
+        if data.get(section) is not None:
+            lines += _toml_table(section, data[section])
+    return "\n".join(lines) + "\n"

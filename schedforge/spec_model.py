@@ -13,10 +13,11 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import MISSING, Field, dataclass, field, fields, is_dataclass, replace
 from typing import Any
 
 __all__ = [
+    "INITIAL_STATES",
     "BathSpec",
     "DeviceSpec",
     "InitialSpec",
@@ -103,6 +104,10 @@ class ScheduleSpec:
     tf_ns: float = 1000.0
     tail: float = 0.2
     points: tuple[tuple[float, float], ...] | None = None
+
+
+#: Initial states a spec can name (``initial.state``).
+INITIAL_STATES: tuple[str, ...] = ("gibbs", "ground")
 
 
 @dataclass(frozen=True)
@@ -213,28 +218,32 @@ class Spec:
         """The part of the spec that determines every simulated number.
 
         It excludes the schedule's own coordinates (family, k, tf), which a sweep
-        varies, and the sweep grid itself; it includes the schedule's shape
-        parameters (``tail``, ``points``), the integrator settings and the waveform.
-        A curves CSV enters through the SHA-256 of its contents, not its path.
+        varies, the sweep grid itself and the noise model (see :data:`NOT_PHYSICS`);
+        it includes the schedule's shape parameters (``tail``, ``points``), the
+        integrator settings and the waveform.  A curves CSV enters through the
+        SHA-256 of its contents, not its path.
+
+        A field added after stores were first written (one not in
+        :data:`HASHED_FROM_THE_START`) enters only when it differs from its default:
+        a spec that leaves it at its default describes the physics it described
+        before the field existed, and keeps its hash, so existing stores are still
+        recognised.  Fields declared ``float`` are hashed as floats (``eta = 1`` and
+        ``eta = 1.0`` are the same physics).
         """
-        sched = self.schedule
-        device = asdict(self.device)
-        del device["curves_sha256"]  # absent before content hashing: old hashes unchanged
+        out: dict[str, Any] = {}
+        for f in fields(self):
+            if f.name in NOT_PHYSICS:
+                continue
+            value = getattr(self, f.name)
+            if f.name == "schedule":
+                out["schedule_shape"] = _physics_fields(value, exclude=SCHEDULE_COORDINATES)
+            elif f.name in HASHED_FROM_THE_START[Spec]:
+                out[f.name] = _physics_value(value)
+            elif value != _default(f):
+                out[f.name] = _physics_value(value)
         if self.device.curves != "linear":  # what the file holds, not where it lies
-            device["curves"] = f"sha256:{self.device.curves_digest()}"
-        numerics = asdict(self.numerics)
-        if numerics["secular_tol_ghz"] is None:  # absent before it existed: hashes unchanged
-            del numerics["secular_tol_ghz"]
-        return {
-            "version": self.version,
-            "device": device,
-            "problem": asdict(self.problem),
-            "bath": asdict(self.bath),
-            "schedule_shape": {"tail": sched.tail, "points": sched.points},
-            "initial": asdict(self.initial),
-            "numerics": numerics,
-            "waveform": None if self.waveform is None else asdict(self.waveform),
-        }
+            out["device"]["curves"] = f"sha256:{self.device.curves_digest()}"
+        return out
 
     def physics_hash(self) -> str:
         """SHA-256 of :meth:`physics_dict` in canonical JSON (stable across runs)."""
@@ -244,3 +253,76 @@ class Spec:
     def with_schedule(self, **changes: Any) -> Spec:
         """A copy with some schedule fields changed (``family``, ``k_end``, ``tf_ns``...)."""
         return replace(self, schedule=replace(self.schedule, **changes))
+
+
+#: Spec fields that are not physics: the sweep grid, the noise model (noise ensembles
+#: add it to their own hash) and the file the spec came from.
+NOT_PHYSICS: frozenset[str] = frozenset({"sweep", "noise", "source"})
+#: The schedule's coordinates, which a sweep varies (not part of the physics hash).
+SCHEDULE_COORDINATES: frozenset[str] = frozenset({"family", "k_start", "k_end", "tf_ns"})
+#: Fields hashed whatever their value, as they were when stores were first written.
+#: Any other field enters :meth:`Spec.physics_dict` only when it differs from its default.
+#: Do not add to these sets: a new field is hashed by the rule for later fields.
+HASHED_FROM_THE_START: dict[type, frozenset[str]] = {
+    Spec: frozenset(
+        {"version", "device", "problem", "bath", "schedule", "initial", "numerics", "waveform"}
+    ),
+    DeviceSpec: frozenset({"curves", "A0_ghz", "B0_ghz"}),
+    ProblemSpec: frozenset({"qubits", "h", "J"}),
+    BathSpec: frozenset(
+        {"spectrum", "coupling", "eta", "cutoff_ghz", "temperature_mk", "lamb_shift"}
+    ),
+    ScheduleSpec: frozenset({"tail", "points"}),
+    InitialSpec: frozenset({"state"}),
+    NumericsSpec: frozenset({"integrator", "rtol", "atol"}),
+    WaveformSpec: frozenset(
+        {
+            "sample_rate_gsps",
+            "dac_bits",
+            "bandwidth_mhz",
+            "filter",
+            "max_slope_per_ns",
+            "breakpoints",
+            "breakpoint_tolerance",
+        }
+    ),
+}
+#: Fields that never enter the hash: the curves file's digest enters through ``curves``.
+_NEVER_HASHED: frozenset[str] = frozenset({"curves_sha256"})
+_FLOAT_TYPES = ("float", "float | None")
+
+
+def _default(f: Field[Any]) -> Any:
+    if f.default is not MISSING:
+        return f.default
+    if f.default_factory is not MISSING:
+        return f.default_factory()
+    return MISSING  # a required field: always differs
+
+
+def _hashed_from_the_start(section: Any) -> frozenset[str]:
+    for cls in type(section).__mro__:  # a subclass that adds fields keeps its base's set
+        if cls in HASHED_FROM_THE_START:
+            return HASHED_FROM_THE_START[cls]
+    return frozenset()
+
+
+def _physics_fields(section: Any, exclude: frozenset[str] = frozenset()) -> dict[str, Any]:
+    """A section's fields for the physics hash (see :meth:`Spec.physics_dict`)."""
+    always = _hashed_from_the_start(section)
+    out: dict[str, Any] = {}
+    for f in fields(section):
+        if f.name in exclude or f.name in _NEVER_HASHED:
+            continue
+        value = getattr(section, f.name)
+        if f.name in always or value != _default(f):
+            if f.type in _FLOAT_TYPES and value is not None:
+                value = float(value)
+            out[f.name] = _physics_value(value)
+    return out
+
+
+def _physics_value(value: Any) -> Any:
+    if is_dataclass(value) and not isinstance(value, type):
+        return _physics_fields(value)
+    return value

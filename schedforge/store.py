@@ -55,13 +55,16 @@ from typing import Any
 from . import __version__
 from .errors import InputError
 from .fileio import atomic_write
+from .metrics import metric_names
 
 __all__ = [
     "ABANDONED",
     "CSV_COLUMNS",
     "LOCK_NAME",
+    "METRIC_COLUMNS",
     "POINTS_CSV_NAME",
     "RESULT_FLOAT_COLUMNS",
+    "SCHEMA_1_METRICS",
     "SCHEMA_VERSION",
     "STORE_NAME",
     "STUDY_OUTPUTS",
@@ -95,39 +98,34 @@ ABANDONED = "abandoned"
 
 #: Coordinates of a point, in sort order of points.csv.
 COORD_COLUMNS: tuple[str, ...] = ("family", "variant", "k_start", "k_end", "tf_ns")
+#: The metric columns of a store made with schema version 1 (every metric registered
+#: since is added to an older store when it is next opened for writing).
+SCHEMA_1_METRICS: tuple[str, ...] = ("trace_distance", "ground_infidelity", "excess_energy_ghz")
+#: Metric columns: every metric of :data:`schedforge.metrics.METRICS`, in its order.
+METRIC_COLUMNS: tuple[str, ...] = metric_names()
 #: Float-valued result columns (NaN stored as NULL).
-RESULT_FLOAT_COLUMNS: tuple[str, ...] = (
-    "trace_distance",
-    "ground_infidelity",
-    "excess_energy_ghz",
-    "wall_s",
-)
+RESULT_FLOAT_COLUMNS: tuple[str, ...] = (*METRIC_COLUMNS, "wall_s")
 #: Columns of points.csv, in order.
 CSV_COLUMNS: tuple[str, ...] = (
-    "family",
-    "variant",
-    "k_start",
-    "k_end",
-    "tf_ns",
-    "trace_distance",
-    "ground_infidelity",
-    "excess_energy_ghz",
+    *COORD_COLUMNS,
+    *METRIC_COLUMNS,
     "status",
     "wall_s",
     "integrator",
     "message",
     "warnings",
 )
-#: Columns of points.csv that an older points.csv may lack (read back as "").
-_OPTIONAL_CSV_COLUMNS = frozenset({"warnings"})
+#: Columns of points.csv that an older (or hand-made) points.csv may lack: the text
+#: columns (read back as "") and metrics registered after schema 1 (read back as NaN).
+_OPTIONAL_CSV_COLUMNS = frozenset(
+    {"integrator", "message", "warnings"} | (set(METRIC_COLUMNS) - set(SCHEMA_1_METRICS))
+)
 #: Separator of a point's warnings in the ``warnings`` column.
 WARNING_SEPARATOR = " | "
 _FLOAT_COLUMNS = frozenset(("k_start", "k_end", "tf_ns", *RESULT_FLOAT_COLUMNS))
 _ROW_COLUMNS: tuple[str, ...] = (
     *COORD_COLUMNS,
-    "trace_distance",
-    "ground_infidelity",
-    "excess_energy_ghz",
+    *METRIC_COLUMNS,
     "status",
     "message",
     "integrator",
@@ -161,9 +159,7 @@ CREATE TABLE IF NOT EXISTS points (
     k_start REAL NOT NULL,
     k_end REAL NOT NULL,
     tf_ns REAL NOT NULL,
-    trace_distance REAL,
-    ground_infidelity REAL,
-    excess_energy_ghz REAL,
+{metric_columns}
     status TEXT NOT NULL,
     message TEXT NOT NULL DEFAULT '',
     integrator TEXT NOT NULL DEFAULT '',
@@ -174,7 +170,7 @@ CREATE TABLE IF NOT EXISTS points (
     worker TEXT NOT NULL DEFAULT '',
     run_id INTEGER NOT NULL REFERENCES runs(run_id)
 );
-"""
+""".replace("{metric_columns}", "\n".join(f"    {name} REAL," for name in METRIC_COLUMNS))
 
 
 def utc_now() -> str:
@@ -331,6 +327,7 @@ class PointStore:
                 self._conn.execute("PRAGMA synchronous=FULL")
                 self._conn.executescript(_SCHEMA)
                 self._bind(physics_hash, physics)
+                self._add_metric_columns()
                 self._close_abandoned_runs()
         except sqlite3.DatabaseError as exc:
             self.close()
@@ -348,6 +345,17 @@ class PointStore:
         verdict = "; ".join(str(r[0]) for r in rows[:3])
         if verdict != "ok":
             raise _damaged(self.path, f"integrity check: {verdict[:300]}")
+
+    def _add_metric_columns(self) -> None:
+        """Give a store made before a metric was registered that metric's column.
+
+        Its old points read back NaN there (not computed); nothing else changes, so
+        the store keeps its schema version and resumes as before.
+        """
+        present = {r[1] for r in self._conn.execute("PRAGMA table_info(points)")}
+        for name in METRIC_COLUMNS:
+            if name not in present:
+                self._conn.execute(f"ALTER TABLE points ADD COLUMN {name} REAL")
 
     def _close_abandoned_runs(self) -> None:
         """Mark runs still "running" as abandoned: we hold the lock, so none is."""
@@ -505,7 +513,7 @@ class PointStore:
                 continue
             d = dict(r)
             for col in _FLOAT_COLUMNS:
-                if d[col] is None:
+                if d.get(col) is None:  # NULL, or a metric this (older) store lacks
                     d[col] = math.nan
             d["warnings"] = WARNING_SEPARATOR.join(point_warnings(d))
             out.append(d)
@@ -662,8 +670,10 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
     InputError
         A required column is missing, a line has too few or too many cells (a
         truncated or damaged file), or a number does not parse; the file and the
-        line are named.
+        line are named; or there is no such file.
     """
+    if not Path(path).is_file():
+        raise InputError(str(path), "must be an existing points.csv file")
     with open(path, newline="", encoding="utf-8-sig") as fh:
         reader = csv.DictReader(fh, restkey="\0extra")
         missing = [
@@ -687,13 +697,13 @@ def read_points_csv(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
                 )
             row: dict[str, Any] = dict(rec)
             for col in _OPTIONAL_CSV_COLUMNS:
-                row.setdefault(col, "")
+                row.setdefault(col, "nan" if col in _FLOAT_COLUMNS else "")
             for col in _FLOAT_COLUMNS & set(CSV_COLUMNS):
                 try:
-                    row[col] = float(rec[col])
+                    row[col] = float(row[col])
                 except (TypeError, ValueError):
                     raise InputError(
-                        where, f"column {col} must be a number, got {_clip(rec[col])}"
+                        where, f"column {col} must be a number, got {_clip(row[col])}"
                     ) from None
             out.append(row)
     return out

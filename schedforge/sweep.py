@@ -39,21 +39,13 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
-from .error_law import NO_K_END_FAMILIES
 from .errors import InputError
 from .executors import Executor, TaskLost, make_executor
+from .metrics import metric_values, nan_metrics
 from .progress import ProgressReporter
-from .spec_model import (
-    BathSpec,
-    DeviceSpec,
-    InitialSpec,
-    NumericsSpec,
-    ProblemSpec,
-    ScheduleSpec,
-    Spec,
-    SweepSpec,
-    WaveformSpec,
-)
+from .schedules import schedule_from_spec, schedule_grid, schedule_label
+from .spec import spec_from_dict
+from .spec_model import Spec
 from .store import (
     POINTS_CSV_NAME,
     STORE_NAME,
@@ -72,19 +64,17 @@ __all__ = [
     "SweepPoint",
     "failed_columns",
     "format_summary",
-    "load_sweep_spec",
     "point_key",
     "result_columns",
     "run_point",
     "run_sweep",
+    "spec_from_store",
     "sweep_points",
 ]
 
 VARIANTS = ("ideal", "realized")
 #: Status of a row that carries an input error instead of a result (never stored).
 INPUT_ERROR = "input-error"
-#: Families whose k orders mean nothing (recorded as 0).
-_NO_K_FAMILIES = frozenset({"linear"})
 
 
 @dataclass(frozen=True, order=True)
@@ -123,9 +113,8 @@ class SweepPoint:
 
     def label(self) -> str:
         """Short text, e.g. ``"beta k=0/2 tf=100 ns"`` (``" realized"`` appended)."""
-        k = "" if self.family in _NO_K_FAMILIES else f" k={self.k_start:g}/{self.k_end:g}"
         v = "" if self.variant == "ideal" else f" {self.variant}"
-        return f"{self.family}{k} tf={self.tf_ns:g} ns{v}"
+        return f"{schedule_label(self.family, self.k_start, self.k_end)} tf={self.tf_ns:g} ns{v}"
 
 
 def point_key(physics_hash: str, point: SweepPoint) -> str:
@@ -138,9 +127,10 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
 
     Families default to ``[spec.schedule.family]``, k_end to ``[spec.schedule.k_end]``
     and tf_ns to ``[spec.schedule.tf_ns]`` (so a spec without ``[sweep]`` gives one
-    point); k_start is ``spec.schedule.k_start``.  ``linear`` gives one point per
-    tf with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its
-    end is flat to every order whatever k_end).  With a ``[waveform]`` section every
+    point); k_start is ``spec.schedule.k_start``.  The schedules come from
+    :func:`schedforge.schedules.schedule_grid`: ``linear`` gives one point per tf
+    with ``k_start = k_end = 0``, ``gevrey`` one per tf with ``k_end = 0`` (its end
+    is flat to every order whatever k_end).  With a ``[waveform]`` section every
     point has a ``"realized"`` twin.
 
     Parameters
@@ -152,24 +142,17 @@ def sweep_points(spec: Spec) -> list[SweepPoint]:
     list of SweepPoint
     """
     grid = spec.sweep
-    sched = spec.schedule
-    families = (grid.family if grid and grid.family else None) or (sched.family,)
-    k_ends = (grid.k_end if grid and grid.k_end else None) or (sched.k_end,)
-    tfs = (grid.tf_ns if grid and grid.tf_ns else None) or (sched.tf_ns,)
+    tfs = (grid.tf_ns if grid and grid.tf_ns else None) or (spec.schedule.tf_ns,)
+    for tf in tfs:
+        if not (isinstance(tf, int | float) and math.isfinite(tf) and tf > 0):
+            raise InputError("sweep.tf_ns", f"must hold numbers > 0, got {tf!r}")
     variants = VARIANTS if spec.waveform is not None else ("ideal",)
-    points = set()
-    for family in families:
-        for k_end in k_ends:
-            for tf in tfs:
-                if not (isinstance(tf, int | float) and math.isfinite(tf) and tf > 0):
-                    raise InputError("sweep.tf_ns", f"must hold numbers > 0, got {tf!r}")
-                for variant in variants:
-                    if family in _NO_K_FAMILIES:
-                        points.add(SweepPoint(family, 0.0, 0.0, tf, variant=variant))
-                    elif family in NO_K_END_FAMILIES:  # k_end has no effect: once per tf
-                        points.add(SweepPoint(family, sched.k_start, 0.0, tf, variant=variant))
-                    else:
-                        points.add(SweepPoint(family, sched.k_start, k_end, tf, variant=variant))
+    points = {
+        SweepPoint(family, k_start, k_end, tf, variant=variant)
+        for family, k_start, k_end in schedule_grid(spec)
+        for tf in tfs
+        for variant in variants
+    }
     return sorted(points)
 
 
@@ -184,11 +167,8 @@ def _json_default(obj: Any) -> Any:
 
 def failed_columns(wall_s: float) -> dict[str, Any]:
     """The store's result columns of a point that produced no numbers (NaN metrics)."""
-    nan = math.nan
     return {
-        "trace_distance": nan,
-        "ground_infidelity": nan,
-        "excess_energy_ghz": nan,
+        **nan_metrics(),
         "integrator": "",
         "stats_json": "{}",
         "wall_s": wall_s,
@@ -197,7 +177,8 @@ def failed_columns(wall_s: float) -> dict[str, Any]:
 
 def _played_note(pending: Sequence[SweepPoint]) -> str:
     """The start line's note on played-waveform points, which cost far more."""
-    n = sum(1 for p in pending if p.variant == "realized")
+    # a plan's points (noise draws) name their sweep variant apart from the stored one
+    n = sum(1 for p in pending if getattr(p, "sweep_variant", p.variant) == "realized")
     if not n:
         return ""
     return (
@@ -209,13 +190,11 @@ def _played_note(pending: Sequence[SweepPoint]) -> str:
 def result_columns(result: Any) -> dict[str, Any]:
     """The store's columns that a :class:`~schedforge.dynamics.SimulationResult` fills.
 
-    Metrics, status, message and the integrator that ran; shared by the sweep and the
-    noise ensembles so both store a point the same way.
+    Every metric of :data:`schedforge.metrics.METRICS`, ``wall_s``, status, message
+    and the integrator that ran; shared by the sweep and the noise ensembles so both
+    store a point the same way.
     """
-    row: dict[str, Any] = {
-        name: float(getattr(result, name))
-        for name in ("trace_distance", "ground_infidelity", "excess_energy_ghz", "wall_s")
-    }
+    row: dict[str, Any] = {**metric_values(result), "wall_s": float(result.wall_s)}
     row["status"] = str(result.status)
     row["message"] = str(result.message or "")
     row["integrator"] = str(result.integrator or "")
@@ -247,8 +226,8 @@ def run_point(
     Returns
     -------
     dict
-        Coordinates, ``trace_distance``, ``ground_infidelity``,
-        ``excess_energy_ghz``, ``status``, ``message``, ``integrator``,
+        Coordinates, every metric (:data:`schedforge.metrics.METRICS`),
+        ``status``, ``message``, ``integrator``,
         ``stats_json`` (with the point's own warnings under ``"warnings"``),
         ``warnings`` (the same, joined by :data:`WARNING_SEPARATOR`), ``wall_s``,
         ``schedforge_version``, ``computed_at``, ``worker``.
@@ -391,21 +370,13 @@ def _preflight(spec: Spec, points: Sequence[SweepPoint]) -> list[str]:
     final steady state raises :class:`~schedforge.errors.SteadyStateError`).
     Returns the system's warnings.
     """
-    from . import schedules
-
-    build = getattr(schedules, "schedule_from_spec", None)
     for fam, k0, k1 in sorted({(p.family, p.k_start, p.k_end) for p in points}):
-        sched_spec = dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1)
-        if build is not None:
-            build(sched_spec)
-        else:
-            schedules.make_schedule(fam, k_start=k0, k_end=k1)
-    from . import dynamics
+        schedule_from_spec(dataclasses.replace(spec.schedule, family=fam, k_start=k0, k_end=k1))
+    from .integrators import get_integrator
+    from .system import System
 
-    system = dynamics.System.from_spec(spec)
-    resolve = getattr(dynamics, "get_integrator", None)
-    if resolve is not None:  # an unknown integrator name is bad input
-        resolve(spec.numerics.integrator, system)
+    system = System.from_spec(spec)
+    get_integrator(spec.numerics.integrator, system)  # an unknown integrator name is bad input
     return list(system.preflight() or [])
 
 
@@ -555,25 +526,7 @@ def run_sweep(
     )
 
 
-def _tuplify(value: Any) -> Any:
-    if isinstance(value, list):
-        return tuple(_tuplify(v) for v in value)
-    return value
-
-
-_SECTIONS: dict[str, type] = {
-    "device": DeviceSpec,
-    "problem": ProblemSpec,
-    "bath": BathSpec,
-    "schedule": ScheduleSpec,
-    "initial": InitialSpec,
-    "numerics": NumericsSpec,
-    "sweep": SweepSpec,
-    "waveform": WaveformSpec,
-}
-
-
-def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
+def spec_from_store(out_dir: str | os.PathLike[str]) -> Spec:
     """The spec of the latest run recorded in ``out_dir/sweep.sqlite``.
 
     For tools that work on a finished sweep folder (analysis, report).  The
@@ -600,14 +553,7 @@ def load_sweep_spec(out_dir: str | os.PathLike[str]) -> Spec:
         physics_hash = store.physics_hash
     if not runs:
         raise InputError(str(path), "records no sweep run (no spec to read)")
-    data = json.loads(runs[-1]["spec_json"])
-    kwargs = {
-        name: None
-        if data.get(name) is None
-        else cls(**{k: _tuplify(v) for k, v in data[name].items()})
-        for name, cls in _SECTIONS.items()
-    }
-    spec = Spec(version=data["version"], source=data.get("source"), **kwargs)
+    spec = spec_from_dict(json.loads(runs[-1]["spec_json"]))
     if spec.physics_hash() != physics_hash:
         raise InputError(str(path), "holds a spec that does not match its physics hash (corrupt?)")
     return spec

@@ -108,9 +108,11 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
+from . import checks
 from .breakpoints import BreakpointDesign, design_breakpoints
 from .errors import InputError
 from .schedules import Schedule
+from .spec_model import WaveformSpec
 
 __all__ = [
     "DEFAULT_FLAT_RTOL",
@@ -119,6 +121,7 @@ __all__ = [
     "RealizedSchedule",
     "RealizedWaveform",
     "Violation",
+    "check_waveform",
     "gaussian_sigma_ns",
     "played_samples",
     "quantize",
@@ -127,7 +130,7 @@ __all__ = [
     "single_pole_tau_ns",
 ]
 
-#: Filter models known to ``waveform.filter``.
+#: Filter models known to ``waveform.filter`` (spec validation and the template list these).
 FILTERS: tuple[str, ...] = ("gaussian", "single-pole")
 #: A realized derivative counts as zero below this fraction of the design's scale.
 DEFAULT_FLAT_RTOL = 1e-3
@@ -596,37 +599,49 @@ class RealizedWaveform:
 # ---------------------------------------------------------------------------
 # realize
 # ---------------------------------------------------------------------------
-def _positive(name: str, value: Any) -> float | None:
-    if value is None:
-        return None
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, int | float)
-        or not (math.isfinite(value) and value > 0)
-    ):
-        raise InputError(f"waveform.{name}", f"must be a finite number > 0, got {value!r}")
-    return float(value)
+def check_waveform(spec: WaveformSpec) -> WaveformSpec:
+    """The ``[waveform]`` section's rules; the one validator of the TOML and Python paths.
+
+    Each limit is absent (``None``) or: ``sample_rate_gsps``, ``bandwidth_mhz``,
+    ``max_slope_per_ns`` > 0; ``dac_bits`` an integer from 1 to 32; ``breakpoints`` an
+    integer >= 2.  ``filter`` is one of :data:`FILTERS`; ``breakpoint_tolerance`` > 0.
+
+    Returns
+    -------
+    WaveformSpec
+        ``spec`` itself.
+
+    Raises
+    ------
+    InputError
+        Naming the ``waveform.*`` key and the rule.
+    """
+    for name in ("sample_rate_gsps", "bandwidth_mhz", "max_slope_per_ns"):
+        value = getattr(spec, name)
+        if value is not None:
+            checks.number(value, f"waveform.{name}", gt=0)
+    if spec.dac_bits is not None:
+        checks.integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
+    checks.choice(spec.filter, "waveform.filter", FILTERS)
+    if spec.breakpoints is not None:
+        checks.integer(spec.breakpoints, "waveform.breakpoints", ge=2)
+    checks.number(spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0)
+    return spec
 
 
-def _check_spec(waveform: Any) -> dict[str, Any]:
+def _check_spec(waveform: WaveformSpec) -> dict[str, Any]:
     """Validated limits of a WaveformSpec (None = not applied)."""
-    bits = waveform.dac_bits
-    if bits is not None and (
-        isinstance(bits, bool) or not isinstance(bits, int) or not 1 <= bits <= 32
-    ):
-        raise InputError("waveform.dac_bits", f"must be an integer from 1 to 32, got {bits!r}")
-    n_bp = waveform.breakpoints
-    if n_bp is not None and (isinstance(n_bp, bool) or not isinstance(n_bp, int) or n_bp < 2):
-        raise InputError("waveform.breakpoints", f"must be an integer >= 2, got {n_bp!r}")
-    filt = waveform.filter
-    if filt not in FILTERS:
-        raise InputError("waveform.filter", f"must be one of {', '.join(FILTERS)}; got {filt!r}")
+    check_waveform(waveform)
+
+    def real(value: float | None) -> float | None:
+        return None if value is None else float(value)
+
     return {
-        "rate": _positive("sample_rate_gsps", waveform.sample_rate_gsps),
-        "bits": bits,
-        "bandwidth": _positive("bandwidth_mhz", waveform.bandwidth_mhz),
-        "filter": filt,
-        "max_slope": _positive("max_slope_per_ns", waveform.max_slope_per_ns),
+        "rate": real(waveform.sample_rate_gsps),
+        "bits": waveform.dac_bits,
+        "bandwidth": real(waveform.bandwidth_mhz),
+        "filter": waveform.filter,
+        "max_slope": real(waveform.max_slope_per_ns),
         "breakpoints": waveform.breakpoints,
         "tolerance": waveform.breakpoint_tolerance,
     }

@@ -10,8 +10,8 @@ from __future__ import annotations
 import numpy as np
 import qutip
 
-from schedforge.dynamics import System
 from schedforge.schedules import make_schedule
+from schedforge.system import System
 from schedforge.units import GHZ_TO_RAD_PER_NS
 
 

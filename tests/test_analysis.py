@@ -22,7 +22,6 @@ from schedforge.analysis import (
     fit_scaling,
     format_fit_table,
     local_slopes,
-    read_points_csv,
     write_fit_csv,
 )
 from schedforge.errors import InputError
@@ -195,13 +194,21 @@ def test_fit_points_groups_and_csv_roundtrip(tmp_path):
 
 
 def test_read_points_csv_errors(tmp_path):
+    # The analysis reads points.csv through the store's one reader.
+    from schedforge.store import CSV_COLUMNS, read_points_csv
+
     p = tmp_path / "points.csv"
-    p.write_text("family,k_start,k_end,tf_ns,status,trace_distance\nbeta,0,1,abc,ok,1e-3\n")
+    cells = {"family": "beta", "variant": "ideal", "k_start": "0", "k_end": "1",
+             "tf_ns": "abc", "status": "ok"}  # fmt: skip
+    line = ",".join(cells.get(c, "1e-3" if c != "warnings" else "") for c in CSV_COLUMNS)
+    p.write_text(",".join(CSV_COLUMNS) + "\n" + line + "\n")
     with pytest.raises(InputError, match="line 2"):
         read_points_csv(p)
     p.write_text("family,k_start,k_end,status\nbeta,0,1,ok\n")
     with pytest.raises(InputError, match="tf_ns"):
         read_points_csv(p)
+    with pytest.raises(InputError, match="existing points"):
+        read_points_csv(tmp_path / "missing.csv")
 
 
 def test_pre_asymptotic_drift_is_not_a_disagreement():
@@ -228,7 +235,8 @@ def test_gevrey_schedule_is_super_polynomial_in_real_dynamics():
     import dataclasses
 
     from schedforge.analysis import numerical_floor
-    from schedforge.dynamics import INTEGRATORS, get_integrator, simulate_spec
+    from schedforge.dynamics import simulate_spec
+    from schedforge.integrators import INTEGRATORS, get_integrator
     from schedforge.spec import load_spec
 
     get_integrator("general", None)  # loads the built-in integrators
@@ -258,11 +266,11 @@ def test_gevrey_schedule_is_super_polynomial_in_real_dynamics():
 @pytest.fixture(scope="module")
 def driven_qubit():
     """The built-in driven qubit: spec, its final relaxation time 1/gap(1) (ns), C_k."""
-    from schedforge.dynamics import System
     from schedforge.error_law import law_time_scale_ns
     from schedforge.prediction import predicted_coefficient
     from schedforge.schedules import schedule_for_point
     from schedforge.spec import load_spec
+    from schedforge.system import System
 
     spec = load_spec("builtin:driven-qubit")
     system = System.from_spec(spec)

@@ -91,3 +91,72 @@ def test_make_bath_from_spec() -> None:
     with pytest.raises(InputError) as err:
         make_bath(BathSpec(spectrum="lorentz"), 1)
     assert err.value.field == "bath.spectrum"
+
+
+class _CubicDensity:
+    """A super-ohmic density, gamma ~ omega^3 e^(-|omega|/omega_c) (an invented kind)."""
+
+    def __init__(self, eta: float, cutoff: float, beta: float) -> None:
+        self.eta, self.cutoff, self.beta = eta, cutoff, beta
+
+    def __call__(self, omega: np.ndarray) -> np.ndarray:
+        w = np.asarray(omega, dtype=float)
+        # w^3 / (1 - e^(-beta w)) = w^2 * [w / (1 - e^(-beta w))]; detailed balance by design
+        g = OhmicSpectralDensity(self.eta, self.cutoff, self.beta)(w)
+        return g * (w / self.cutoff) ** 2
+
+
+def test_spectral_density_protocol_and_a_registered_kind() -> None:
+    from schedforge.bath import SPECTRA, SpectralDensity, SpectrumKind, register_spectrum
+    from schedforge.spec import parse_spec
+    from schedforge.units import GHZ_TO_RAD_PER_NS
+
+    assert isinstance(OhmicSpectralDensity(ETA, WC, BETA), SpectralDensity)
+    assert not isinstance(lambda w: w, SpectralDensity)  # a bare function needs beta=
+    with pytest.raises(InputError, match="beta"):
+        Bath(lambda w: np.exp(-np.abs(w)), (pauli_operator("x", 0, 1),))
+
+    def build(spec: BathSpec) -> _CubicDensity:
+        return _CubicDensity(
+            spec.eta, GHZ_TO_RAD_PER_NS * spec.cutoff_ghz, beta_from_mk(spec.temperature_mk)
+        )
+
+    register_spectrum(SpectrumKind("test-cubic", "invented for a test", build))
+    try:
+        with pytest.raises(ValueError, match="already registered"):
+            register_spectrum(SpectrumKind("test-cubic", "again", build))
+        spec = parse_spec({"version": 1, "bath": {"spectrum": "test-cubic"}})
+        bath = make_bath(spec.bath, 1)
+        assert bath is not None and isinstance(bath.spectral_density, _CubicDensity)
+        assert bath.beta == beta_from_mk(12.0)  # read off the density (the protocol)
+    finally:
+        del SPECTRA["test-cubic"]
+    with pytest.raises(InputError) as err:
+        parse_spec({"version": 1, "bath": {"spectrum": "test-cubic"}})
+    assert err.value.field == "bath.spectrum"
+
+
+@pytest.mark.parametrize(
+    ("changes", "field"),
+    [
+        ({"coupling": "w"}, "bath.coupling"),
+        ({"spectrum": "lorentz"}, "bath.spectrum"),
+        ({"eta": -1e-4}, "bath.eta"),
+        ({"cutoff_ghz": 0.0}, "bath.cutoff_ghz"),
+        ({"temperature_mk": float("nan")}, "bath.temperature_mk"),
+        ({"temperature_mk": -5.0}, "bath.temperature_mk"),
+        ({"spectrum": "none", "temperature_mk": 0.0}, "bath.temperature_mk"),
+        ({"lamb_shift": 1}, "bath.lamb_shift"),
+    ],
+)
+def test_bath_rules_are_the_same_from_toml_and_from_python(
+    changes: dict[str, object], field: str
+) -> None:
+    from schedforge.spec import parse_spec
+
+    with pytest.raises(InputError) as from_toml:
+        parse_spec({"version": 1, "bath": changes})
+    with pytest.raises(InputError) as from_python:
+        make_bath(BathSpec(**changes), 1)  # type: ignore[arg-type]
+    assert from_toml.value.field == from_python.value.field == field
+    assert str(from_toml.value) == str(from_python.value)

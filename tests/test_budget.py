@@ -15,8 +15,8 @@ import pytest
 
 from schedforge.budget import candidate_schedules, format_budget_table, plan_budget
 from schedforge.cli import main
-from schedforge.dynamics import INTEGRATORS, get_integrator
 from schedforge.errors import InputError
+from schedforge.integrators import INTEGRATORS, get_integrator
 from schedforge.spec import load_spec
 
 

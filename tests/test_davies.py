@@ -10,10 +10,10 @@ from scipy import linalg
 
 from schedforge.bath import Bath, OhmicSpectralDensity
 from schedforge.device import LinearCurves
-from schedforge.dynamics import System
 from schedforge.errors import SteadyStateError
 from schedforge.hamiltonian import AnnealingHamiltonian, pauli_operator
 from schedforge.spec_model import ProblemSpec
+from schedforge.system import System
 from schedforge.units import beta_from_mk
 
 BETA = beta_from_mk(12.0)
@@ -194,7 +194,7 @@ def test_assembly_entries_counts_the_sparse_form() -> None:
 
 
 def test_preflight_skips_generators_too_large_to_assemble(monkeypatch) -> None:
-    import schedforge.dynamics as dyn
+    import schedforge.system as dyn
 
     full = _system(PROBLEMS["3q-uniform"])
     full.preflight()

@@ -15,7 +15,8 @@ from pathlib import Path
 import pytest
 
 from schedforge.cli import build_parser
-from schedforge.dynamics import INTEGRATORS, _load_builtin_integrators, simulate_spec
+from schedforge.dynamics import simulate_spec
+from schedforge.integrators import INTEGRATORS
 from schedforge.spec import MAX_QUBITS, TEMPLATE, load_spec, parse_spec
 
 README = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
@@ -60,7 +61,6 @@ def test_qubit_range_is_the_same_in_template_readme_and_spec() -> None:
 
 
 def test_template_names_every_integrator_and_explains_the_families() -> None:
-    _load_builtin_integrators()
     assert INTEGRATORS
     for name in INTEGRATORS:
         assert f'"{name}"' in TEMPLATE, name
@@ -102,3 +102,40 @@ def test_every_simulate_statistic_is_explained_in_the_readme() -> None:
         for key in result.stats:
             documented = re.sub(r"^rejected_\w+$", "rejected_<reason>", key)
             assert f"`{documented}`" in section, f"{result.integrator}: stats[{key!r}]"
+
+
+def _python_examples() -> list[tuple[str, str]]:
+    """Each ```python block of the README with the ```text block that follows it."""
+    pattern = r"```python\n(.*?)```\s*\n+prints\s*\n+```text\n(.*?)```"
+    return re.findall(pattern, README, re.S)
+
+
+def test_readme_python_example_runs_and_prints_what_it_shows(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    examples = _python_examples()
+    assert examples, "README has no Python example followed by its output"
+    monkeypatch.chdir(tmp_path)
+    for code, shown in examples:
+        exec(compile(code, "README.md", "exec"), {"__name__": "readme_example"})
+        assert capsys.readouterr().out == shown
+
+
+def test_public_api_is_reexported_lazily() -> None:
+    import subprocess
+    import sys
+
+    import schedforge
+
+    assert set(schedforge.__all__) == {"__version__", *schedforge._EXPORTS}
+    for name, module in schedforge._EXPORTS.items():
+        assert getattr(schedforge, name) is getattr(
+            __import__(f"schedforge.{module}", fromlist=[name]), name
+        )
+    # `import schedforge` alone loads neither NumPy nor the simulation modules
+    code = (
+        "import sys, schedforge; "
+        "print(sorted(m for m in sys.modules if m.startswith(('numpy', 'schedforge.'))))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"

@@ -25,13 +25,15 @@ from scipy.integrate import solve_ivp
 from scipy.linalg import expm as scipy_expm
 from scipy.optimize import minimize_scalar
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
+from schedforge.integrators import crossings, frame, slow_step, stepper
 from schedforge.integrators import eigenframe as ef
-from schedforge.integrators.collocation import lagrange_weights
+from schedforge.integrators.collocation import collocation_scheme, lagrange_weights
 from schedforge.integrators.free_modes import expm_stack
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
+from schedforge.system import System
 
 
 @pytest.fixture(scope="module")
@@ -65,20 +67,20 @@ def _agree(fast: float, ref: float) -> bool:
 def test_radau_tableau_matches_published_values() -> None:
     # Hairer & Wanner (1996): two-stage Radau IIA has c = (1/3, 1) and
     # A = [[5/12, -1/12], [3/4, 1/4]]; three-stage nodes (4 -+ sqrt 6)/10, 1.
-    two = ef.collocation_scheme(2)
+    two = collocation_scheme(2)
     np.testing.assert_allclose(two.c, [1 / 3, 1.0], atol=1e-14)
     np.testing.assert_allclose(two.A, [[5 / 12, -1 / 12], [3 / 4, 1 / 4]], atol=1e-13)
-    three = ef.collocation_scheme(3)
+    three = collocation_scheme(3)
     s6 = math.sqrt(6.0)
     np.testing.assert_allclose(three.c, [(4 - s6) / 10, (4 + s6) / 10, 1.0], atol=1e-13)
     # the default scheme integrates polynomials of its degree exactly
-    sch = ef.collocation_scheme()
+    sch = collocation_scheme()
     np.testing.assert_allclose(sch.w @ sch.tau**5, 1 / 6, atol=1e-13)
 
 
 def test_davies_rates_obey_detailed_balance(qubit: System) -> None:
     # Davies (1974): W_ab pi_b = W_ba pi_a with pi the Gibbs weights, at any s
-    model = ef.EigenframeModel.from_system(System.from_spec(_spec_with(THREE_QUBITS)))
+    model = frame.EigenframeModel.from_system(System.from_spec(_spec_with(THREE_QUBITS)))
     fr = model.frame(np.array([0.2, 0.7, 1.0]), None)
     for W, pi in zip(fr.W, fr.pi, strict=True):
         flux = W * pi[None, :]
@@ -88,7 +90,7 @@ def test_davies_rates_obey_detailed_balance(qubit: System) -> None:
 
 def test_frame_rotation_matches_eigenvector_derivative(qubit: System) -> None:
     # K = V^T dV/ds against a central difference of the (sign-aligned) eigenvectors
-    model = ef.EigenframeModel.from_system(System.from_spec(_spec_with(TWO_QUBITS)))
+    model = frame.EigenframeModel.from_system(System.from_spec(_spec_with(TWO_QUBITS)))
     s0, ds = 0.4, 1e-6
     mid = model.frame(np.array([s0]), None)
     plus = model.frame(np.array([s0 + ds]), mid.V[0])
@@ -134,7 +136,7 @@ def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
     # against the definition, by brute force: the longest candidate step h' <= limit with
     # no coherence in 1 < |lambda| h' < LEVIN_COMFORT (else the current h)
     def brute(lam_abs, h, limit):
-        lo, hi = 1.0 / lam_abs, ef.LEVIN_COMFORT / lam_abs
+        lo, hi = 1.0 / lam_abs, stepper.LEVIN_COMFORT / lam_abs
         cands = np.concatenate([lo, hi * 1.01, [limit]])
         cands = np.sort(cands[(cands > h) & (cands <= limit)])[::-1]
         for c in cands:
@@ -146,7 +148,7 @@ def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
     for _ in range(500):
         lam = 10 ** rng.uniform(0, 6, rng.integers(1, 40))
         h, limit = 10 ** rng.uniform(-7, -1.5), 10 ** rng.uniform(-4, -1)
-        assert ef._clean_jump(lam, h, limit) == brute(lam, h, limit)
+        assert stepper.clean_jump(lam, h, limit) == brute(lam, h, limit)
 
 
 @pytest.mark.parametrize(
@@ -168,14 +170,14 @@ def test_forced_solver_path_matches_general(monkeypatch, problem, tf, setting, v
     f = make_schedule("beta", k_end=2)
     ref = simulate(system, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
     calls = []
-    real = getattr(ef, spied)
+    real = getattr(slow_step, spied)
 
     def counted(*args, **kwargs):
         calls.append(1)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(ef, setting, value)
-    monkeypatch.setattr(ef, spied, counted)
+    monkeypatch.setattr(slow_step, setting, value)
+    monkeypatch.setattr(slow_step, spied, counted)
     fast = simulate(system, f, tf, integrator="eigenframe")
     assert fast.integrator == "eigenframe" and len(calls) >= fast.stats["steps"]
     assert _agree(fast.trace_distance, ref.trace_distance), (fast, ref)
@@ -188,8 +190,8 @@ def test_core_and_pair_blocks_solve_the_same_collocation_system(monkeypatch, tf,
     # change how the linear system is solved).  At tf = 50 ns every coherence is
     # resolved on this step, at 5000 ns every one takes the exponential (Levin) update.
     system = System.from_spec(_spec_with(THREE_QUBITS))
-    model = ef.EigenframeModel.from_system(system)
-    scheme = ef.collocation_scheme()
+    model = frame.EigenframeModel.from_system(system)
+    scheme = collocation_scheme()
     f = make_schedule("beta", k_end=2)
     x0 = 0.45
     fd = f.derivatives(x0 + h * scheme.tau, 1)
@@ -202,14 +204,14 @@ def test_core_and_pair_blocks_solve_the_same_collocation_system(monkeypatch, tf,
     c0 = 0.5 * (c0 + c0.conj().T)
     np.fill_diagonal(c0, 0.0)
     off = ~np.eye(d, dtype=bool)
-    levin = off & (np.min(np.abs(tf * fr.lam), axis=0) * h >= ef.LEVIN_THRESHOLD)
+    levin = off & (np.min(np.abs(tf * fr.lam), axis=0) * h >= stepper.LEVIN_THRESHOLD)
     assert levin[off].mean() == (1.0 if tf > 1000.0 else 0.0)
     args = (h, p0, c0, levin, fr, fd[1], tf, scheme, 1e-12, 1e-16)
-    monkeypatch.setattr(ef, "CORE_COUPLING", math.inf)
-    plain = ef._slow_step(*args)
-    monkeypatch.setattr(ef, "CORE_COUPLING", 0.0)
-    assert ef._strong_pairs(h, fr.K[1:], fd[1][1:], off)[0].size > 0
-    core = ef._slow_step(*args)
+    monkeypatch.setattr(slow_step, "CORE_COUPLING", math.inf)
+    plain = slow_step.slow_step(*args)
+    monkeypatch.setattr(slow_step, "CORE_COUPLING", 0.0)
+    assert slow_step.strong_pairs(h, fr.K[1:], fd[1][1:], off)[0].size > 0
+    core = slow_step.slow_step(*args)
     assert np.isfinite(plain.err) and np.isfinite(core.err)
     scale = max(np.max(np.abs(plain.P)), np.max(np.abs(plain.C)))
     assert np.max(np.abs(core.P - plain.P)) <= 1e-11 * scale
@@ -227,14 +229,14 @@ def test_undressed_free_mode_estimate_bounds_the_error(monkeypatch, problem, tf,
     # margins: 3.4-4.8x for the qubit, 11x for three qubits (29x for two at 300 ns).
     spec = load_spec("builtin:driven-qubit") if problem is None else _spec_with(problem)
     system = System.from_spec(spec)
-    model = ef.EigenframeModel.from_system(system)
+    model = frame.EigenframeModel.from_system(system)
     f = make_schedule("beta", k_end=k_end)
     resolved = ef.integrate_eigenframe(model, f, tf, mode="resolved")
-    monkeypatch.setattr(ef, "DRESSING_MAX_DIM", 0)
+    monkeypatch.setattr(stepper, "DRESSING_MAX_DIM", 0)
     bare = ef.integrate_eigenframe(model, f, tf)
-    assert bare["stats"]["exponential_steps"] > 0
-    error = 2.0 * ef._trace_distance(bare["deviation"] - resolved["deviation"])
-    estimate = bare["stats"]["free_mode_error_estimate"]
+    assert bare.stats["exponential_steps"] > 0
+    error = 2.0 * ef._trace_distance(bare.deviation - resolved.deviation)
+    estimate = bare.stats["free_mode_error_estimate"]
     assert error > 1e-9  # the bare run does leave something out
     assert estimate >= error, (estimate, error)
     assert estimate <= 1e3 * error  # and the estimate is not vacuous
@@ -258,7 +260,7 @@ def test_stacked_matrix_exponentials_match_scipy(n: int) -> None:
 def test_lagrange_weights_reproduce_polynomials_outside_the_nodes() -> None:
     # the predictor extrapolates the last step's collocation polynomial: exact for
     # polynomials of degree <= m, checked against numpy.polyval
-    scheme = ef.collocation_scheme()
+    scheme = collocation_scheme()
     rng = np.random.default_rng(11)
     coef = rng.normal(size=scheme.tau.size)
     t = np.linspace(-0.5, 3.0, 15)
@@ -319,7 +321,7 @@ def test_landau_zener_transition_matches_two_level_dynamics(gap: float, rate: fl
     start = np.linalg.eigh(H(-T))[1][:, 0].astype(complex)
     sol = solve_ivp(rhs, (-T, T), start, method="DOP853", rtol=1e-10, atol=1e-12)
     stays = abs(np.linalg.eigh(H(T))[1][:, 0] @ sol.y[:, -1]) ** 2
-    assert ef.landau_zener_transition(gap, rate) == pytest.approx(stays, abs=1e-5)
+    assert crossings.landau_zener_transition(gap, rate) == pytest.approx(stays, abs=1e-5)
 
 
 def _crossing_system(j: float) -> System:
@@ -335,7 +337,7 @@ def _crossing_system(j: float) -> System:
 
 
 def _smallest_gap(system: System, level: int, near: float) -> float:
-    model = ef.EigenframeModel.from_system(system)
+    model = frame.EigenframeModel.from_system(system)
 
     def gap(s: float) -> float:
         E = np.linalg.eigvalsh(model.hamiltonian_batch(np.array([s]))[0][0])
@@ -421,7 +423,7 @@ def test_sector_coupling_is_the_rest_of_the_davies_generator(name: str, s: float
     from schedforge.integrators.sectors import sector_coupling
 
     system = System.from_spec(_spec_with(SPARSE_PROBLEMS[name], **SECTOR_BATH))
-    model = ef.EigenframeModel.from_system(system)
+    model = frame.EigenframeModel.from_system(system)
     fr = model.frame(np.array([s]), None)
     E, V = fr.E[0], fr.V[0]
     tol = system.degeneracy_tol
@@ -445,10 +447,10 @@ def test_transported_frame_rotation_matches_finite_differences() -> None:
     # frame inside them is transported from a reference, and its rotation
     # V^T dV/ds there must be the derivative of that frame (central differences)
     system = System.from_spec(_spec_with(SPARSE_PROBLEMS["ring"], **SECTOR_BATH))
-    model = ef.EigenframeModel.from_system(system)
+    model = frame.EigenframeModel.from_system(system)
     s0, ds = 0.45, 1e-5
     here = model.frame(np.array([s0]), None)
-    clusters = ef._degenerate_clusters(here.E, ef._degeneracy_tol(here.E))
+    clusters = frame.degenerate_clusters(here.E, frame.frame_tol(here.E))
     assert clusters, "the ring should have degenerate levels"
     # a reference far from the eigenspaces (any fixed vectors will do), so that the
     # transported frame turns inside them

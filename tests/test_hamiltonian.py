@@ -89,3 +89,30 @@ def test_bad_problem_names_the_field(problem: ProblemSpec, field: str) -> None:
     with pytest.raises(InputError) as err:
         AnnealingHamiltonian(LinearCurves(1.0, 1.0), problem)
     assert err.value.field == field
+
+
+@pytest.mark.parametrize(
+    ("problem", "field"),
+    [
+        ({"qubits": 9, "h": [0.0] * 9}, "problem.qubits"),  # MAX_QUBITS = 8 on both paths
+        ({"qubits": 2, "h": [0.1, 2e6]}, "problem.h[1]"),
+        ({"qubits": 2, "h": [0.1, 0.2], "J": [[-1, 1, 1.0]]}, "problem.J[0][0]"),
+        ({"qubits": 2, "h": [0.1, 0.2], "J": [[0, 1, float("inf")]]}, "problem.J[0][2]"),
+    ],
+)
+def test_problem_rules_are_the_same_from_toml_and_from_python(
+    problem: dict[str, object], field: str
+) -> None:
+    from schedforge.spec import parse_spec
+
+    with pytest.raises(InputError) as from_toml:
+        parse_spec({"version": 1, "problem": problem})
+    python_problem = ProblemSpec(
+        problem["qubits"],  # type: ignore[arg-type]
+        tuple(problem["h"]),  # type: ignore[arg-type]
+        tuple(tuple(c) for c in problem.get("J", [])),  # type: ignore[attr-defined]
+    )
+    with pytest.raises(InputError) as from_python:
+        AnnealingHamiltonian(LinearCurves(1.0, 1.0), python_problem)
+    assert from_toml.value.field == from_python.value.field == field
+    assert str(from_toml.value) == str(from_python.value)

@@ -27,7 +27,7 @@ from scipy.linalg import expm
 
 from schedforge.bath import Bath, OhmicSpectralDensity
 from schedforge.device import LinearCurves
-from schedforge.dynamics import System, simulate, simulate_spec
+from schedforge.dynamics import simulate, simulate_spec
 from schedforge.errors import InputError
 from schedforge.hamiltonian import AnnealingHamiltonian, pauli_operator
 from schedforge.integrators import held
@@ -40,6 +40,7 @@ from schedforge.integrators.held import (
 from schedforge.schedules import BetaSchedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec, WaveformSpec
+from schedforge.system import System
 from schedforge.units import beta_from_mk
 from schedforge.waveform import realize
 

@@ -261,7 +261,7 @@ atol = 1e-14
 
 
 def _with_integrator(spec, name):
-    from schedforge.dynamics import INTEGRATORS, get_integrator
+    from schedforge.integrators import INTEGRATORS, get_integrator
 
     get_integrator("general", None)  # loads the built-in integrators
     chosen = name if name in INTEGRATORS else "auto"
@@ -270,12 +270,13 @@ def _with_integrator(spec, name):
 
 @pytest.mark.slow
 def test_predicted_coefficient_matches_sweep_driven_qubit(tmp_path):
-    from schedforge.analysis import fit_points, read_points_csv
-    from schedforge.dynamics import System
+    from schedforge.analysis import fit_points
     from schedforge.prediction import predicted_coefficient
     from schedforge.spec import load_spec
     from schedforge.spec_model import SweepSpec
+    from schedforge.store import read_points_csv
     from schedforge.sweep import run_sweep
+    from schedforge.system import System
 
     spec = load_spec("builtin:driven-qubit")
     tfs = tuple(float(t) for t in np.geomspace(3e3, 1e6, 6))
@@ -303,9 +304,10 @@ def test_predicted_coefficient_matches_sweep_driven_qubit(tmp_path):
 def test_predicted_coefficient_matches_simulation_two_qubits(k):
     import tomllib
 
-    from schedforge.dynamics import System, simulate_spec
+    from schedforge.dynamics import simulate_spec
     from schedforge.prediction import predicted_coefficient
     from schedforge.spec import parse_spec
+    from schedforge.system import System
 
     spec = _with_integrator(parse_spec(tomllib.loads(TWO_QUBIT_TOML)), "eigenframe")
     pred = predicted_coefficient(System.from_spec(spec), make_schedule("beta", k_start=0, k_end=k))

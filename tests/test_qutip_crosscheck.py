@@ -12,9 +12,10 @@ import functools
 import pytest
 from qutip_reference import brmesolve_trace_distance
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
 from schedforge.schedules import make_schedule
 from schedforge.spec_model import BathSpec, DeviceSpec, ProblemSpec, Spec
+from schedforge.system import System
 
 QUBIT = Spec()  # A0 3.5, B0 2.5 GHz, h = 0.7, ohmic X coupling, eta 1e-4, 8 GHz, 12 mK
 ISING = Spec(

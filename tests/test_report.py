@@ -19,11 +19,11 @@ import pytest
 
 from schedforge.analysis import FIT_COLUMNS
 from schedforge.cli import main
-from schedforge.dynamics import System
 from schedforge.prediction import predicted_coefficient
-from schedforge.report import CAUTION, analyse_sweep_dir, spec_to_toml
+from schedforge.report import CAUTION, analyse_sweep_dir
 from schedforge.schedules import make_schedule
-from schedforge.spec import load_spec
+from schedforge.spec import load_spec, spec_to_toml
+from schedforge.system import System
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 

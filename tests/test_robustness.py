@@ -25,7 +25,7 @@ from schedforge.errors import InputError
 from schedforge.spec import load_spec
 from schedforge.spec_model import Spec
 from schedforge.store import STORE_NAME, PointStore, archive_sweep_dir, read_points_csv
-from schedforge.sweep import load_sweep_spec
+from schedforge.sweep import spec_from_store
 
 # A small open-system study: one qubit, three anneal times (about 1 s of computing).
 STUDY_A = """version = 1
@@ -77,7 +77,7 @@ def test_report_replaces_a_foreign_spec_copy_with_the_stores(tmp_path, write_spe
     code, _, err = run_cli("report", out)
     assert code == 0, err
     assert "did not describe the study in the store" in err
-    assert load_spec(out / "spec.toml").physics_hash() == load_sweep_spec(out).physics_hash()
+    assert load_spec(out / "spec.toml").physics_hash() == spec_from_store(out).physics_hash()
 
 
 def test_lock_held_until_fit_and_report_are_written(tmp_path, write_spec, run_cli, monkeypatch):
@@ -139,7 +139,7 @@ def test_curves_hashed_by_content_not_path(tmp_path, write_spec):
 
 
 def test_curves_changed_after_loading_are_refused(tmp_path, write_spec):
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     path = write_spec('version = 1\n[device]\ncurves = "c.csv"\n')
     (tmp_path / "c.csv").write_text(CURVES)
@@ -210,7 +210,7 @@ def test_byte_order_mark_accepted_in_spec_and_curves(tmp_path):
     (tmp_path / "c.csv").write_bytes(b"\xef\xbb\xbf" + CURVES.encode())
     spec = tmp_path / "s.toml"
     spec.write_bytes(b'\xef\xbb\xbfversion = 1\n[device]\ncurves = "c.csv"\n')
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     assert System.from_spec(load_spec(spec)).hamiltonian.curves.s.size == 11
 
@@ -263,7 +263,7 @@ def test_lowest_temperature_is_where_beta_times_spread_reaches_1400(write_spec):
 
 
 def test_curve_values_and_all_zero_table(tmp_path, write_spec):
-    from schedforge.dynamics import System
+    from schedforge.system import System
 
     path = write_spec('version = 1\n[device]\ncurves = "c.csv"\n')
     (tmp_path / "c.csv").write_text(CURVES.replace("0.50,1.750000", "0.50,1e308"))

@@ -367,3 +367,98 @@ def test_secular_tolerance_is_read_and_hashed_only_when_set() -> None:
     assert set_.numerics.secular_tol_ghz == 1e-5
     assert "secular_tol_ghz" not in plain.physics_dict()["numerics"]
     assert plain.physics_hash() != set_.physics_hash()
+
+
+# -- the physics hash across releases -----------------------------------------------------
+#: Hashes written into stores before this test existed (Spec() and builtin:ising-2q);
+#: tests/test_robustness.py pins the same values.
+STORED_HASHES = {
+    "default": "9bbce94710b01e78b2a9a34b957c7f0571a2722b93e74b43588b32ba85c316fe",
+    "ising-2q": "4497d262f68f4822d932cfbb88fe9e5a4af01b2da14984a27d0223cae63a0874",
+}
+
+
+def test_a_new_optional_field_at_its_default_keeps_existing_stores() -> None:
+    # A later release adds fields with defaults (subclasses stand in for it here): a spec
+    # that leaves them at their defaults has the physics of before, so its hash, by which
+    # an existing store is recognised, must not change; set, the field changes the hash.
+    import dataclasses
+
+    @dataclasses.dataclass(frozen=True)
+    class LaterBath(BathSpec):
+        drift_ghz: float = 0.0
+
+    @dataclasses.dataclass(frozen=True)
+    class LaterSchedule(ScheduleSpec):
+        warp: float = 0.0
+
+    @dataclasses.dataclass(frozen=True)
+    class LaterWaveform(WaveformSpec):
+        skew_ns: float | None = None
+
+    @dataclasses.dataclass(frozen=True)
+    class LaterSpec(Spec):
+        crosstalk: float | None = None  # a new optional section
+
+    for name, spec in (("default", Spec()), ("ising-2q", load_spec("builtin:ising-2q"))):
+        assert spec.physics_hash() == STORED_HASHES[name]
+        later = LaterSpec(**{f.name: getattr(spec, f.name) for f in dataclasses.fields(Spec)})
+        later = dataclasses.replace(
+            later,
+            bath=LaterBath(**dataclasses.asdict(spec.bath)),
+            schedule=LaterSchedule(**dataclasses.asdict(spec.schedule)),
+        )
+        assert later.physics_hash() == STORED_HASHES[name]
+        for changed in (
+            dataclasses.replace(later, bath=dataclasses.replace(later.bath, drift_ghz=0.1)),
+            dataclasses.replace(later, schedule=dataclasses.replace(later.schedule, warp=0.5)),
+            dataclasses.replace(later, crosstalk=0.01),
+        ):
+            assert changed.physics_hash() != STORED_HASHES[name]
+    # a waveform section gains a field: same rule inside an optional section
+    plain = parse("version = 1\n[waveform]\ndac_bits = 8")
+    later_wave = dataclasses.replace(plain, waveform=LaterWaveform(dac_bits=8))
+    assert later_wave.physics_hash() == plain.physics_hash()
+    skewed = dataclasses.replace(plain, waveform=LaterWaveform(dac_bits=8, skew_ns=0.2))
+    assert skewed.physics_hash() != plain.physics_hash()
+
+
+def test_physics_hash_ignores_what_is_not_physics() -> None:
+    spec = load_spec("builtin:ising-2q")
+    same = (
+        spec.with_schedule(family="linear", k_end=5, tf_ns=3.0),  # a sweep's coordinates
+        Spec(**{**vars(spec), "source": "elsewhere.toml"}),
+        parse("version = 1\n[sweep]\ntf_ns = [10.0]"),  # compared with Spec() below
+    )
+    assert same[0].physics_hash() == spec.physics_hash()
+    assert same[1].physics_hash() == spec.physics_hash()
+    assert same[2].physics_hash() == Spec().physics_hash()
+    # a float field written as an integer is the same physics (Python-built specs)
+    assert Spec(bath=BathSpec(eta=1)).physics_hash() == Spec(bath=BathSpec(eta=1.0)).physics_hash()
+    assert Spec(bath=BathSpec(eta=2e-4)).physics_hash() != Spec().physics_hash()
+
+
+def test_spec_writes_back_as_toml_and_dict_with_nested_noise_tables(tmp_path):
+    # spec.py owns both directions: the TOML copy a sweep folder keeps and the dict the
+    # store records must read back to an equal spec, [noise.problems] included.
+    import dataclasses
+    import json
+
+    from schedforge.spec import spec_from_dict, spec_to_toml
+
+    text = (
+        "version = 1\n[problem]\nqubits = 1\nh = [0.7]\n"
+        "[sweep]\ntf_ns = [100.0, 200.0]\nk_end = [1, 2]\n"
+        '[noise]\nlevel = 0.01\nterms = ["h"]\ndraws = 3\nlevels = [0.01, 0.02]\n'
+        '[noise.problems]\ngraph = "chain"\nsizes = [2, 3]\n'
+    )
+    path = tmp_path / "a.toml"
+    path.write_text(text)
+    spec = load_spec(path)
+    copy = tmp_path / "copy.toml"
+    copy.write_text(spec_to_toml(spec))
+    back = load_spec(copy)
+    assert dataclasses.replace(back, source=spec.source) == spec
+    assert "[noise.problems]" in copy.read_text()
+    record = json.loads(json.dumps(dataclasses.asdict(spec)))
+    assert spec_from_dict(record) == spec

@@ -177,3 +177,31 @@ def test_read_points_csv_names_bad_line(tmp_path):
     path.write_text(path.read_text().replace("10.0", "ten", 1))
     with pytest.raises(InputError, match="line 2"):
         read_points_csv(path)
+
+
+def test_store_without_a_metric_column_gains_it_and_resumes(tmp_path):
+    # A store made before a metric was registered: its points table lacks that
+    # column.  Opening it for writing adds the column (SQLite's documented
+    # ALTER TABLE ... ADD COLUMN: existing rows read NULL); its points stay and read
+    # back NaN there, new points store the value.
+    import schedforge.store as store_mod
+
+    path = tmp_path / STORE_NAME
+    with PointStore(path, HASH_A) as store:
+        run = store.begin_run(executor="serial", n_points=2, n_pending=2)
+        store.commit("k1", _row(10.0), run)
+    conn = sqlite3.connect(str(path))
+    conn.execute("ALTER TABLE points DROP COLUMN excess_energy_ghz")  # SQLite >= 3.35
+    conn.commit()
+    conn.close()
+    with PointStore(path) as old:  # read-only: the missing metric reads NaN
+        (row,) = old.rows()
+        assert math.isnan(row["excess_energy_ghz"]) and row["trace_distance"] == 1e-3
+    with PointStore(path, HASH_A) as store:  # for writing: the column is added back
+        assert store.keys() == {"k1"}
+        run = store.begin_run(executor="serial", n_points=2, n_pending=1)
+        store.commit("k2", _row(100.0), run)
+        rows = {r["key"]: r for r in store.rows()}
+    assert math.isnan(rows["k1"]["excess_energy_ghz"])
+    assert rows["k2"]["excess_energy_ghz"] == _row(100.0)["excess_energy_ghz"]
+    assert store_mod.METRIC_COLUMNS == tuple(store_mod.metric_names())

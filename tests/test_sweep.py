@@ -371,9 +371,9 @@ def test_changed_spec_refused_then_fresh_starts_over(tmp_path, write_spec, run_c
         assert store.physics_hash == load_spec(changed).physics_hash()
         assert len(store) == 2 and [r["run_id"] for r in store.runs()] == [1]
     # The folder remembers its spec (for analysis/report tools).
-    from schedforge.sweep import load_sweep_spec
+    from schedforge.sweep import spec_from_store
 
-    assert load_sweep_spec(out) == load_spec(changed)
+    assert spec_from_store(out) == load_spec(changed)
 
 
 @pytest.mark.parametrize(

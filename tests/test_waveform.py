@@ -314,8 +314,9 @@ def test_realized_polyline_departs_from_the_ideal_error_law() -> None:
     # 300-3000 ns is asymptotic.
     from dataclasses import replace
 
-    from schedforge.dynamics import System, simulate
+    from schedforge.dynamics import simulate
     from schedforge.spec import load_spec
+    from schedforge.system import System
 
     spec = load_spec("builtin:driven-qubit")
     system = System.from_spec(replace(spec, bath=replace(spec.bath, eta=1e-2)))

@@ -17,12 +17,12 @@ from pathlib import Path
 from typing import Any
 
 from ..device import make_device_curves
-from ..dynamics import curve_warnings
 from ..errors import InputError
 from ..fileio import atomic_write_all
 from ..samples import DEFAULT_POINTS, sample_schedule, samples_metadata, write_samples
 from ..schedules import schedule_from_spec
 from ..spec import BUILTIN_PREFIX, load_spec
+from ..system import curve_warnings
 from .options import (
     EXIT_LIMIT_VIOLATION,
     add_spec_argument,

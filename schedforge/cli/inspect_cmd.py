@@ -10,9 +10,9 @@ from typing import Any
 import numpy as np
 
 from ..device import make_device_curves
-from ..dynamics import curve_warnings
 from ..schedules import Schedule, schedule_from_spec
 from ..spec import load_spec
+from ..system import curve_warnings
 from .options import add_spec_argument
 
 __all__ = ["inspect_schedule", "register", "run"]

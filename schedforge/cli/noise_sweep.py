@@ -3,7 +3,9 @@
 Every (schedule, tf) of the spec's ``[sweep]`` grid is simulated for the noiseless
 problem and for each noise draw of ``[noise]``, through the sweep engine (resumable
 ``DIR/sweep.sqlite``, executors, progress).  Writes ``DIR/points.csv``, the ensemble
-tables (``ensemble*.csv``) and ``DIR/noise-report.html``.
+tables (``ensemble*.csv``) and one report, ``DIR/report.html``: the control-error
+section (:mod:`schedforge.noise_report`) above the sweep report of the noiseless points
+(with ``DIR/fit.csv``, ``DIR/spec.toml`` and ``DIR/plots/``).
 """
 
 from __future__ import annotations
@@ -15,9 +17,8 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import InputError
-from ..executors import EXECUTOR_KINDS, make_executor
-from .options import add_spec_argument, positive_int
-from .sweep import _executor_kind
+from ..executors import make_executor
+from .options import add_executor_arguments, add_spec_argument, executor_kind, positive_int
 
 __all__ = ["register", "run"]
 
@@ -40,33 +41,20 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--draws", type=positive_int("--draws"), metavar="N", help="override noise.draws"
     )
-    p.add_argument("--executor", choices=EXECUTOR_KINDS, default=None, help="as for sweep")
-    p.add_argument("--workers", type=positive_int("--workers"), metavar="N", help="as for sweep")
-    p.add_argument("--scheduler", metavar="ADDRESS", help="as for sweep (Dask scheduler)")
-    p.add_argument(
-        "--dask-local", type=positive_int("--dask-local"), metavar="N", help="as for sweep"
-    )
+    add_executor_arguments(p)
     p.add_argument("--fresh", action="store_true", help="archive an existing store, start over")
     p.add_argument("--retry-failed", action="store_true", help="recompute points not ok")
     p.add_argument("--quiet", action="store_true", help="no progress output")
     p.set_defaults(handler=run)
 
 
-def _notes(outcome: Any) -> list[str]:
-    notes = [f"warning (every point): {w}" for w in outcome.sweep.warnings]
-    failed = outcome.sweep.failed
-    if failed:
-        notes.append(
-            f"{len(failed)} point(s) did not succeed; they are left out of the statistics "
-            "(see the status column of points.csv)."
-        )
-    fallbacks = sum("fallback" in str(r.get("integrator", "")) for r in outcome.sweep.rows)
-    if fallbacks:
-        notes.append(
-            f"{fallbacks} of {len(outcome.sweep.rows)} points were handed over to the "
-            "general integrator (see points.csv)."
-        )
-    return notes
+def _name(r: Any) -> str:
+    """``"beta 0/2"``, ``"linear"``, with ``" played"`` for a realized twin."""
+    from ..schedules import FAMILIES, Schedule
+
+    has_k = FAMILIES.get(r["family"], Schedule).has_k
+    name = f"{r['family']} {r['k_start']:g}/{r['k_end']:g}" if has_k else r["family"]
+    return name + (" played" if r.get("variant") == "realized" else "")
 
 
 def format_ensemble(outcome: Any) -> str:
@@ -76,32 +64,24 @@ def format_ensemble(outcome: Any) -> str:
         return f"{v:.3g}" if v == v else "-"
 
     lines = [
-        f"{'schedule':<16} {'expected':>8} {'nominal':>8} {'draws':>5} {'agree':>5} "
+        f"{'schedule':<20} {'expected':>8} {'nominal':>8} {'draws':>5} {'agree':>5} "
         f"{'slope mean':>10} {'slope std':>9}"
     ]
     for r in outcome.per_schedule:
-        name = (
-            r["family"]
-            if r["family"] == "linear"
-            else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
-        )
+        name = _name(r)
         lines.append(
-            f"{name:<16} {num(r['expected_slope']):>8} {num(r['nominal_slope']):>8} "
+            f"{name:<20} {num(r['expected_slope']):>8} {num(r['nominal_slope']):>8} "
             f"{r['draws']:>5} {r['agrees']:>5} {num(r['slope_mean']):>10} {num(r['slope_std']):>9}"
         )
     lines.append("")
     lines.append(
-        f"{'schedule':<16} {'tf_ns':>8} {'ok':>5} {'TD nominal':>10} {'TD mean':>9} "
+        f"{'schedule':<20} {'tf_ns':>8} {'ok':>5} {'TD nominal':>10} {'TD mean':>9} "
         f"{'TD spread':>9} {'P0 mean':>8} {'P0 spread':>9}"
     )
     for r in outcome.per_point:
-        name = (
-            r["family"]
-            if r["family"] == "linear"
-            else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
-        )
+        name = _name(r)
         lines.append(
-            f"{name:<16} {r['tf_ns']:>8g} {r['ok']:>5} {num(r['nominal_trace_distance']):>10} "
+            f"{name:<20} {r['tf_ns']:>8g} {r['ok']:>5} {num(r['nominal_trace_distance']):>10} "
             f"{num(r['trace_distance_mean']):>9} {num(r['trace_distance_spread']):>9} "
             f"{num(r['intended_probability_mean']):>8} "
             f"{num(r['intended_probability_spread']):>9}"
@@ -118,14 +98,11 @@ def run(args: argparse.Namespace) -> int:
     0: complete (failed points are listed); 1: points lost by the executor; 2: bad
     input; 130: interrupted (finished points are stored).
     """
-    from ..control_noise import problem_precision
-    from ..fileio import atomic_write_text
     from ..noise_ensemble import run_noise_sweep
-    from ..problem_families import IsingProblem
-    from ..report import noise_figures, render_noise_report
+    from ..noise_report import ensemble_notes, write_noise_report
     from ..spec import load_spec
 
-    kind = _executor_kind(args)
+    kind = executor_kind(args)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise InputError("--out", f"must be a directory, {out} is a file")
@@ -147,16 +124,13 @@ def run(args: argparse.Namespace) -> int:
                 file=sys.stderr,
             )
             return 130
-    precision = problem_precision(IsingProblem.from_spec(spec.problem), spec.noise)
-    notes = _notes(outcome)
-    html = render_noise_report(spec, outcome, noise_figures(outcome, precision), notes=notes)
-    report = out / "noise-report.html"
-    atomic_write_text(report, html)
+    notes = ensemble_notes(outcome.sweep.rows)
+    analysis = write_noise_report(out, spec, outcome.sweep.rows, notes=notes)
     if not args.quiet:
         print(format_ensemble(outcome))
-        for n in notes:
+        for n in [*(f"warning (every point): {w}" for w in outcome.sweep.warnings), *notes]:
             print(n)
-        for path in [*outcome.files.values(), report]:
+        for path in [*outcome.files.values(), analysis.fit_csv, analysis.report_html]:
             print(f"wrote {path}")
     if not outcome.sweep.complete:
         missing = outcome.sweep.n_points - outcome.sweep.n_done

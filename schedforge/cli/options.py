@@ -8,13 +8,16 @@ from collections.abc import Callable
 from pathlib import Path
 
 from ..errors import InputError
+from ..executors import EXECUTOR_KINDS
 from ..fileio import writable_folder_problem
 
 __all__ = [
     "EXIT_LIMIT_VIOLATION",
+    "add_executor_arguments",
     "add_spec_argument",
     "check_output_dir",
     "check_output_path",
+    "executor_kind",
     "nonnegative_float",
     "positive_float",
     "positive_int",
@@ -85,6 +88,53 @@ def add_spec_argument(parser: argparse.ArgumentParser) -> None:
         help="study spec file (TOML), or builtin:NAME for a packaged scenario "
         "(builtin:driven-qubit, builtin:ising-2q)",
     )
+
+
+def add_executor_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add where a study's points run: ``--executor``, ``--workers``, ``--scheduler``,
+    ``--dask-local`` (read back with :func:`executor_kind`)."""
+    parser.add_argument(
+        "--executor",
+        choices=EXECUTOR_KINDS,
+        default=None,
+        help="where points run: serial, local processes (default) or dask",
+    )
+    parser.add_argument(
+        "--workers",
+        type=positive_int("--workers"),
+        metavar="N",
+        help="processes for --executor processes (default: all cores)",
+    )
+    parser.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="join a running Dask scheduler (tcp://host:8786); its workers need the same "
+        "schedforge version installed",
+    )
+    parser.add_argument(
+        "--dask-local",
+        type=positive_int("--dask-local"),
+        metavar="N",
+        help="start a Dask LocalCluster with N workers",
+    )
+
+
+def executor_kind(args: argparse.Namespace) -> str:
+    """The executor kind the options of :func:`add_executor_arguments` ask for.
+
+    ``--scheduler`` or ``--dask-local`` imply ``dask``.
+
+    Raises
+    ------
+    InputError
+        ``--scheduler`` or ``--dask-local`` with another ``--executor``.
+    """
+    uses_dask = args.scheduler is not None or args.dask_local is not None
+    kind = args.executor or ("dask" if uses_dask else "processes")
+    if uses_dask and kind != "dask":
+        option = "--scheduler" if args.scheduler is not None else "--dask-local"
+        raise InputError(option, f"needs --executor dask, not --executor {kind}")
+    return kind
 
 
 def check_output_path(path: str, option: str) -> Path:

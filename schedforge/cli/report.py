@@ -44,9 +44,9 @@ def study_from_store(folder: Path) -> tuple[Any, list[dict[str, Any]]]:
         A damaged store, no run recorded, or a grid whose points are not all stored.
     """
     from ..store import STORE_NAME, PointStore
-    from ..sweep import load_sweep_spec, point_key, sweep_points
+    from ..sweep import point_key, spec_from_store, sweep_points
 
-    spec = load_sweep_spec(folder)
+    spec = spec_from_store(folder)
     with PointStore(folder / STORE_NAME) as store:
         keys = [point_key(store.physics_hash, p) for p in sweep_points(spec)]
         rows = store.rows(keys)
@@ -90,7 +90,13 @@ def run(args: argparse.Namespace) -> int:
     if not has_store and not (folder / POINTS_CSV_NAME).is_file():
         raise InputError("DIR", f"must hold {STORE_NAME} or points.csv (a sweep); none in {folder}")
     with folder_lock(folder):
-        if has_store:
+        from ..noise_report import load_noise_study, write_noise_report
+
+        noise = load_noise_study(folder)
+        if noise is not None:  # a noise-sweep folder: its own points and report section
+            write_points_csv(folder / POINTS_CSV_NAME, noise[1])
+            result = write_noise_report(folder, *noise)
+        elif has_store:
             spec, rows = study_from_store(folder)
             if _spec_copy_disagrees(folder, spec):
                 print(

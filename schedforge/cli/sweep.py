@@ -2,10 +2,9 @@
 
 Each finished point is committed at once to ``DIR/sweep.sqlite``; rerunning the
 same command after a crash, Ctrl-C or ``kill -9`` computes only the missing points.
-``DIR/points.csv`` is regenerated from the store at the end.  When the analysis
-module provides ``analyse_sweep_dir(out_dir, spec)``, it is called after a
-complete sweep to add the fits and the report to ``DIR`` (not with
-``--points-only``, which moves an older study's fits and report to
+``DIR/points.csv`` is regenerated from the store at the end.  After a complete
+sweep :func:`schedforge.report.analyse_sweep_dir` adds the fits and the report to
+``DIR`` (not with ``--points-only``, which moves an older study's fits and report to
 ``DIR/archive/`` instead, so that they never sit beside points they were not
 made from).
 
@@ -21,10 +20,9 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from ..errors import InputError
-from ..executors import EXECUTOR_KINDS, make_executor
+from ..executors import make_executor
 from ..store import POINTS_CSV_NAME, STUDY_OUTPUTS, archive_outputs, folder_lock
-from .options import add_spec_argument, check_output_dir, positive_int
+from .options import add_executor_arguments, add_spec_argument, check_output_dir, executor_kind
 
 __all__ = ["register", "run"]
 
@@ -44,30 +42,7 @@ def register(subparsers: Any) -> None:
     )
     add_spec_argument(p)
     p.add_argument("--out", required=True, metavar="DIR", help="sweep folder (created if needed)")
-    p.add_argument(
-        "--executor",
-        choices=EXECUTOR_KINDS,
-        default=None,
-        help="where points run: serial, local processes (default) or dask",
-    )
-    p.add_argument(
-        "--workers",
-        type=positive_int("--workers"),
-        metavar="N",
-        help="processes for --executor processes (default: all cores)",
-    )
-    p.add_argument(
-        "--scheduler",
-        metavar="ADDRESS",
-        help="join a running Dask scheduler (tcp://host:8786); its workers need the same "
-        "schedforge version installed",
-    )
-    p.add_argument(
-        "--dask-local",
-        type=positive_int("--dask-local"),
-        metavar="N",
-        help="start a Dask LocalCluster with N workers",
-    )
+    add_executor_arguments(p)
     p.add_argument(
         "--fresh",
         action="store_true",
@@ -90,19 +65,20 @@ def register(subparsers: Any) -> None:
     p.set_defaults(handler=run)
 
 
-def _executor_kind(args: argparse.Namespace) -> str:
-    uses_dask = args.scheduler is not None or args.dask_local is not None
-    kind = args.executor or ("dask" if uses_dask else "processes")
-    if uses_dask and kind != "dask":
-        option = "--scheduler" if args.scheduler is not None else "--dask-local"
-        raise InputError(option, f"needs --executor dask, not --executor {kind}")
-    return kind
+def _analyse(out: Path, spec: Any, *, echo: bool) -> None:
+    """Fits, plots, spec copy and report of the finished sweep; the table on stdout."""
+    from ..report import analyse_sweep_dir
+
+    result = analyse_sweep_dir(out, spec)
+    if echo:
+        print(result.table)
+        print(f"wrote {result.fit_csv}")
+        print(f"wrote {result.report_html}")
 
 
 def _analysis_hook() -> Any:
-    from ..analysis import analyse_sweep_dir
-
-    return analyse_sweep_dir
+    """What runs after a complete sweep (a seam for tests)."""
+    return _analyse
 
 
 def run(args: argparse.Namespace) -> int:
@@ -115,7 +91,7 @@ def run(args: argparse.Namespace) -> int:
     """
     from ..spec import load_spec
 
-    kind = _executor_kind(args)
+    kind = executor_kind(args)
     out = check_output_dir(args.out, "--out")
     spec = load_spec(args.spec)
     out.mkdir(parents=True, exist_ok=True)
@@ -177,7 +153,6 @@ def _run_locked(args: argparse.Namespace, spec: Any, kind: str, out: Path) -> in
             "computes them again)",
             file=sys.stderr,
         )
-    hook = None if args.points_only else _analysis_hook()
-    if hook is not None:
-        hook(out, spec, echo=not args.quiet)
+    if not args.points_only:
+        _analysis_hook()(out, spec, echo=not args.quiet)
     return 0

@@ -44,10 +44,11 @@ from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 
 from ..davies import DaviesGenerator, eigen_decomposition
-from ..dynamics import IntegrationOutcome, System, register_integrator
 from ..errors import InputError
 from ..progress import report_anneal_progress
 from ..schedules import Schedule
+from ..system import System
+from .base import IntegrationOutcome, register_integrator
 
 __all__ = ["integrate_closed", "integrate_general", "segment_boundaries"]
 

@@ -42,7 +42,7 @@ Method
   builds (a Hermitian correction commuting with H), so it joins the blocks.  Its
   adaptive quadrature makes each new level slow (tens of ms).
 * **Cache**: the eigen-decomposition, the target state and the blocks of each
-  distinct level are cached per :class:`~schedforge.dynamics.System` (bounded by
+  distinct level are cached per :class:`~schedforge.system.System` (bounded by
   :data:`CACHE_BYTES`, least recently used dropped first): DAC levels repeat
   between the points of a sweep.
 
@@ -67,9 +67,10 @@ from scipy.linalg import expm
 from scipy.sparse import csgraph
 
 from ..davies import EigenDecomposition
-from ..dynamics import IntegrationOutcome, System, register_integrator
 from ..errors import InputError
 from ..schedules import Schedule
+from ..system import System
+from .base import IntegrationOutcome, register_integrator
 
 __all__ = [
     "CACHE_BYTES",

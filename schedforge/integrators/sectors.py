@@ -36,8 +36,17 @@ from scipy.linalg import expm
 from scipy.sparse import csgraph
 
 from ..davies import bohr_groups, group_levels, pair_pairs
+from .frame import EigenframeModel, FrameData, frame_tol
 
-__all__ = ["propagate_sector_modes", "rotation_superoperator", "sector_coupling"]
+__all__ = [
+    "apply_sector",
+    "propagate_sector_modes",
+    "resonant_coupling",
+    "rotation_superoperator",
+    "sector_coupling",
+    "sector_couplings",
+    "sector_leak",
+]
 
 
 def sector_coupling(
@@ -174,3 +183,77 @@ def rotation_superoperator(K: NDArray[np.float64]) -> sparse.csr_matrix:
     Ks = sparse.csr_matrix(K)
     eye = sparse.identity(d, format="csr")
     return sparse.csr_matrix(-(sparse.kron(Ks, eye) - sparse.kron(eye, Ks.T)))
+
+
+def apply_sector(sector: list[Any], rho: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    """The sector couplings at each node applied to rho at that node (stacked)."""
+    n, d = rho.shape[0], rho.shape[1]
+    out = np.zeros((n, d * d), dtype=complex)
+    flat = rho.reshape(n, d * d)
+    for j, S in enumerate(sector):
+        if S is not None:
+            out[j] = S @ flat[j]
+    return out.reshape(rho.shape)
+
+
+def sector_couplings(model: EigenframeModel, fr: FrameData, tol: float) -> list[Any] | None:
+    """The Bohr-sector couplings at the step's nodes, or None where there are none.
+
+    Only where some node has coinciding Bohr frequencies or degenerate levels
+    (within ``tol``); elsewhere the eigenframe's rates are the whole generator.
+    """
+    tol = max(tol, frame_tol(fr.E))
+    if not np.any((fr.min_bohr_gap <= tol) | (fr.min_level_gap <= tol)):
+        return None
+    out = [
+        sector_coupling(fr.E[n], fr.V[n], model.operators, model.gamma, tol)
+        for n in range(fr.E.shape[0])
+    ]
+    return None if all(S is None for S in out) else out
+
+
+def resonant_coupling(
+    sector: list[Any], fr: FrameData, fp: NDArray[np.float64], tf: float
+) -> list[Any]:
+    """Per node, the couplings between free modes that do not oscillate (per unit x).
+
+    ``tf`` times the sector coupling, plus the frame's rotation ``-f' [K, .]`` inside
+    degenerate levels (the transported frame turns there, and the modes it couples
+    share their frequency exactly).
+    """
+    tol = frame_tol(fr.E)
+    out = []
+    for j, S in enumerate(sector):
+        E = fr.E[j]
+        inside = (np.abs(E[:, None] - E[None, :]) <= tol) & ~np.eye(E.size, dtype=bool)
+        C = None if S is None else tf * S
+        if inside.any():
+            R = fp[j] * rotation_superoperator(np.where(inside, fr.K[j], 0.0))
+            C = R if C is None else C + R
+        out.append(C)
+    return out
+
+
+def sector_leak(
+    sector: list[Any],
+    A: NDArray[np.complex128],
+    free: NDArray[np.bool_],
+    tf: float,
+    h: float,
+    weights: NDArray[np.float64],
+) -> float:
+    """What free modes feed, through their sector, into elements that are not free.
+
+    Those elements (populations, resolved coherences) take the free modes' forcing
+    in neither their collocation nor the modes' own propagation; bounded over the
+    step by ``h tf sum_j w_j |S_j| |A|``, at most the amplitude itself.
+    """
+    d = A.shape[0]
+    amp = np.abs(A.ravel()) * free.ravel()
+    if not amp.any():
+        return 0.0
+    fed = np.zeros(d * d)
+    for j, S in enumerate(sector):
+        if S is not None:
+            fed += (h * tf * weights[j]) * (abs(S).T @ (~free.ravel()).astype(float))
+    return float(np.sum(np.minimum(fed, 1.0) * amp))

@@ -16,8 +16,8 @@ from matplotlib.figure import Figure
 from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
-from ..error_law import NO_K_END_FAMILIES
-from ..schedules import Schedule
+from ..metrics import METRICS
+from ..schedules import FAMILIES, Schedule
 
 __all__ = [
     "BOUNDED_METRICS",
@@ -29,7 +29,7 @@ __all__ = [
 
 
 #: Error metrics that cannot exceed 1 (predicted lines are not drawn above it).
-BOUNDED_METRICS: frozenset[str] = frozenset({"trace_distance", "ground_infidelity"})
+BOUNDED_METRICS: frozenset[str] = frozenset(m.name for m in METRICS.values() if m.bounded)
 
 
 def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
@@ -42,7 +42,7 @@ def _axes(ax: Axes | None, figsize: tuple[float, float]) -> tuple[Figure, Axes]:
 
 
 def _label(fit: ScalingFit) -> str:
-    k = "" if fit.family in NO_K_END_FAMILIES else f" k_end={fit.k_end:g}"
+    k = f" k_end={fit.k_end:g}" if FAMILIES.get(fit.family, Schedule).k_end_varies else ""
     v = "" if fit.variant == "ideal" else f" ({fit.variant})"
     return f"{fit.family}{k}{v}"
 
@@ -146,7 +146,8 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     if t_lim is not None:
         ax.set_xlim(*t_lim)
     ax.set_xlabel("tf (ns)")
-    ax.set_ylabel(fit.metric.replace("_", " "))
+    known = METRICS.get(fit.metric)
+    ax.set_ylabel(known.heading if known else fit.metric.replace("_", " "))
     ax.set_title(f"{_label(fit)}: {fit.verdict}", fontsize=10)
     ax.grid(alpha=0.3, which="both")
     _legend_below(ax)
@@ -219,7 +220,7 @@ def plot_schedule_derivatives(
         top = orders if sched.max_order is None else min(orders, sched.max_order)
         with np.errstate(all="ignore"):
             d = sched.derivatives(x, top)
-        k = "" if sched.family == "linear" else f" k_end={sched.k_end:g}"
+        k = f" k_end={sched.k_end:g}" if FAMILIES.get(sched.family, Schedule).has_k else ""
         for order in range(top + 1):
             axes[order].plot(x, d[order], color=f"C{i % 10}", label=f"{sched.family}{k}")
     for order, panel in enumerate(axes):

@@ -1,0 +1,378 @@
+"""The eigenframe of H(s): levels, eigenvectors, their rotation and the Davies data.
+
+:class:`EigenframeModel` evaluates, at a batch of points s, the eigen-decomposition
+of H(s) with continuous eigenvector signs, the frame's rotation ``K = V^T dV/ds``,
+the Pauli rates, the coherence rates lambda_ab and the Gibbs populations
+(:class:`FrameData`).  Levels degenerate at a point are rotated to diagonalise
+dH/ds (the limit of the eigenbasis); levels that stay degenerate get a transported
+frame inside their eigenspace (:func:`transported`, Loewdin's basis closest to the
+previous one) whose rotation there is known exactly (:func:`transport_rotation`).
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass, fields
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..units import GHZ_TO_RAD_PER_NS
+
+__all__ = [
+    "DEGENERACY_RTOL",
+    "EigenframeModel",
+    "FrameData",
+    "adapt_degenerate",
+    "degenerate_clusters",
+    "diabatic_states",
+    "frame_tol",
+    "opening_levels",
+    "transport_rotation",
+    "transported",
+]
+
+
+#: Levels closer than this (relative to the largest |E|) are treated as degenerate when
+#: building the frame: eigh cannot resolve their eigenvectors to better than
+#: eps |H| / gap, so they are rotated to diagonalise dH/ds instead.
+DEGENERACY_RTOL = 1e-7
+
+
+def frame_tol(E: NDArray[np.float64]) -> float:
+    """Level spacing (rad/ns) below which levels are treated as degenerate."""
+    return DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(E))))
+
+
+def adapt_degenerate(
+    E: NDArray[np.float64], V: NDArray[np.float64], dH: NDArray[np.float64], tol: float
+) -> None:
+    """Rotate eigenvectors of degenerate levels into the basis that dH/ds diagonalises.
+
+    This is the limit of the eigenbasis as the degeneracy is lifted by moving along
+    s (first-order degenerate perturbation theory), so the frame is continuous at
+    points such as s = 0 of a multi-qubit transverse-field driver.  In place.
+    """
+    for n in range(E.shape[0]):
+        gaps = np.diff(E[n])
+        if not np.any(gaps <= tol):
+            continue
+        start = 0
+        for i in range(1, E.shape[1] + 1):
+            if i == E.shape[1] or gaps[i - 1] > tol:
+                if i - start > 1:
+                    block = V[n][:, start:i]
+                    sub = block.T @ dH[n] @ block
+                    _, rot = np.linalg.eigh(0.5 * (sub + sub.T))
+                    V[n][:, start:i] = block @ rot
+                start = i
+
+
+def degenerate_clusters(E: NDArray[np.float64], tol: float) -> list[tuple[int, NDArray[np.intp]]]:
+    """Groups of labels whose levels lie within ``tol`` of each other, per point.
+
+    Returns (point index, labels) for every group of two or more levels.
+    """
+    out = []
+    for n in range(E.shape[0]):
+        order = np.argsort(E[n], kind="stable")
+        gaps = np.diff(E[n][order]) > tol
+        if gaps.all():
+            continue
+        starts = np.concatenate(([0], np.flatnonzero(gaps) + 1, [E.shape[1]]))
+        for a, b in itertools.pairwise(starts):
+            if b - a > 1:
+                out.append((n, np.sort(order[a:b])))
+    return out
+
+
+def opening_levels(
+    E_start: NDArray[np.float64],
+    E_end: NDArray[np.float64],
+    V_start: NDArray[np.float64],
+    dH_start: NDArray[np.float64],
+) -> NDArray[np.intp] | None:
+    """Labels of degenerate levels at the step's start that are split at its end.
+
+    Their basis inside the eigenspace was chosen by transport and need not be the one
+    the levels split into.  Only groups that dH/ds does not split at first order count:
+    where it does, the frame already holds its eigenvectors there (the limit of the
+    eigenbasis, ``adapt_degenerate``).  None when no such group splits over the step.
+    """
+    tol = frame_tol(E_start[None])
+    opening = []
+    for _, members in degenerate_clusters(E_start[None], tol):
+        if np.ptp(E_end[members]) <= frame_tol(E_end[None]):
+            continue
+        block = V_start[:, members]
+        first = np.linalg.eigvalsh(block.T @ dH_start @ block)
+        if np.min(np.diff(first)) > DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(first)))):
+            continue
+        opening.append(members)
+    return np.concatenate(opening) if opening else None
+
+
+def transported(Vc: NDArray[np.float64], Q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The orthonormal basis of span(Vc) closest to ``Q``: ``P Q (Q^T P Q)^(-1/2)``.
+
+    For levels that stay degenerate, the eigenvectors inside their eigenspace are
+    arbitrary; this choice (Loewdin's symmetric orthonormalisation of the projected
+    reference) turns as little as possible from the reference, so the frame is
+    continuous, and its rotation inside the eigenspace is known exactly
+    (:func:`transport_rotation`).
+    """
+    u, _, vt = np.linalg.svd(Vc.T @ Q)
+    return Vc @ (u @ vt)
+
+
+def transport_rotation(
+    E: NDArray[np.float64],
+    V: NDArray[np.float64],
+    Hp: NDArray[np.float64],
+    members: NDArray[np.intp],
+    Q: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """``V_c^T dV_c/ds`` inside degenerate levels for the frame of :func:`transported`.
+
+    With P the projector on the eigenspace, ``V_c = P Q M^(-1/2)`` and ``M = Q^T P Q``:
+    ``V_c^T V_c' = M^(-1/2) N M^(-1/2) + M^(1/2) (M^(-1/2))'`` with
+    ``N = Q^T P P' Q = sum_(a in c, e not in c) (Q^T v_a) H'_ae (v_e^T Q) / (E_a - E_e)``
+    (first-order perturbation of the spectral projector, Kato 1966) and
+    ``M' = N + N^T``; the derivative of ``M^(-1/2)`` by the Daleckii-Krein formula.
+    ``Hp`` is dH/ds in the frame ``V`` (columns already transported).
+    """
+    d = E.size
+    rest = np.setdiff1d(np.arange(d), members)
+    B = V[:, members].T @ Q  # (k, k)
+    if rest.size:
+        denom = E[members][:, None] - E[rest][None, :]
+        N = B.T @ (Hp[np.ix_(members, rest)] / denom) @ (V[:, rest].T @ Q)
+    else:
+        N = np.zeros_like(B)
+    mu, U = np.linalg.eigh(B.T @ B)
+    mu = np.maximum(mu, 1e-300)
+    r = mu**-0.5
+    diff = mu[:, None] - mu[None, :]
+    same = np.abs(diff) <= 1e-14 * mu.max()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dd = np.where(same, -0.5 * mu[:, None] ** -1.5, (r[:, None] - r[None, :]) / diff)
+    Mp = N + N.T
+    inv_sqrt = (U * r) @ U.T
+    sqrt = (U * mu**0.5) @ U.T
+    d_inv_sqrt = U @ (dd * (U.T @ Mp @ U)) @ U.T
+    K = inv_sqrt @ N @ inv_sqrt + sqrt @ d_inv_sqrt
+    return 0.5 * (K - K.T)
+
+
+def diabatic_states(
+    H: NDArray[np.float64],
+    dH: NDArray[np.float64],
+    E: NDArray[np.float64],
+    V: NDArray[np.float64],
+    labels: NDArray[np.intp],
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Energies and vectors with the levels ``labels`` turned into diabatic states.
+
+    Within the span of those eigenvectors, the states that diagonalise dH/ds are the
+    diabatic states of a crossing whose coupling does not change along s (the
+    Landau-Zener model); each replaces the eigenvector it overlaps most, and its
+    energy is its expectation value of H.  Returns new (E, V).
+    """
+    block = V[:, :, labels]
+    sub = np.swapaxes(block, 1, 2) @ dH @ block
+    _, rot = np.linalg.eigh(0.5 * (sub + np.swapaxes(sub, 1, 2)))
+    # rot[n, j, k]: component of diabatic state k on eigenvector j; keep label j
+    # on the diabatic state that continues it
+    pick = np.argmax(np.abs(rot), axis=2)
+    for n in range(rot.shape[0]):
+        if np.unique(pick[n]).size == labels.size:
+            rot[n] = rot[n][:, pick[n]]
+    states = block @ rot
+    E, V = E.copy(), V.copy()
+    V[:, :, labels] = states
+    E[:, labels] = np.einsum("nia,nij,nja->na", states, H, states)
+    return E, V
+
+
+@dataclass(frozen=True)
+class FrameData:
+    """Eigenframe quantities at a batch of n points s (stacked along axis 0).
+
+    All frequencies in rad/ns; ``K`` per unit s.
+    """
+
+    E: NDArray[np.float64]  # (n, d) energies
+    V: NDArray[np.float64]  # (n, d, d) eigenvectors (columns), sign-aligned
+    K: NDArray[np.float64]  # (n, d, d) V^T dV/ds, real antisymmetric
+    W: NDArray[np.float64]  # (n, d, d) Pauli generator (columns sum to zero)
+    lam: NDArray[np.complex128]  # (n, d, d) -i omega_ab - Gamma_ab, zero diagonal
+    pi: NDArray[np.float64]  # (n, d) Gibbs populations
+    dpi: NDArray[np.float64]  # (n, d) d pi / ds
+    slope: NDArray[np.float64]  # (n, d) dE/ds (Hellmann-Feynman), rad/ns
+    min_level_gap: NDArray[np.float64]  # (n,) smallest |E_a - E_b|, rad/ns
+    min_bohr_gap: NDArray[np.float64]  # (n,) smallest gap between distinct Bohr frequencies
+
+    def last(self) -> FrameData:
+        """The data at the last point only."""
+        return FrameData(**{f.name: getattr(self, f.name)[-1:] for f in fields(self)})
+
+
+class EigenframeModel:
+    """Eigenframe data of H(s) = driver and problem parts, with a Davies bath.
+
+    Parameters
+    ----------
+    hamiltonian_batch : callable
+        ``hamiltonian_batch(s) -> (H, dH/ds)`` for an array of n points s, each of
+        shape (n, d, d), real symmetric, in rad/ns.
+    operators : sequence of ndarray
+        Hermitian system-bath coupling operators (one per bath).
+    spectral_density : callable
+        ``gamma(omega) -> rate`` in rad/ns, vectorised.
+    beta : float
+        Inverse temperature in ns/rad.
+    """
+
+    def __init__(
+        self,
+        hamiltonian_batch: Any,
+        operators: Any,
+        spectral_density: Any,
+        beta: float,
+    ) -> None:
+        self.hamiltonian_batch = hamiltonian_batch
+        self.operators = []
+        for op in operators:
+            op = np.asarray(op)
+            if not (np.iscomplexobj(op) and np.any(np.abs(op.imag) > 0)):
+                op = np.real(op).astype(float)
+            self.operators.append(op)
+        self.gamma = spectral_density
+        self.beta = float(beta)
+        self.dim = self.hamiltonian_batch(np.array([0.0]))[0].shape[-1]
+        self.gamma0 = float(np.asarray(self.gamma(np.array([0.0])))[0])
+
+    @classmethod
+    def from_system(cls, system: Any) -> EigenframeModel:
+        """The model of a :class:`schedforge.system.System` with a bath."""
+        ham = system.hamiltonian
+        scale = 0.5 * GHZ_TO_RAD_PER_NS
+        driver = np.asarray(ham.driver, dtype=float)
+        diag = np.asarray(ham.problem_diagonal, dtype=float)
+        d = driver.shape[0]
+        idx = np.arange(d)
+
+        def batch(s: NDArray[np.float64]) -> tuple[NDArray, NDArray]:
+            ab = ham.curves.derivatives(np.asarray(s, dtype=float), 1)  # (2, 2, n)
+            out = []
+            for order in (0, 1):
+                mats = (-scale * ab[0, order])[:, None, None] * driver[None]
+                mats[:, idx, idx] += (scale * ab[1, order])[:, None] * diag[None, :]
+                out.append(mats)
+            return out[0], out[1]
+
+        bath = system.bath
+        return cls(batch, bath.operators, bath.gamma, bath.beta)
+
+    def frame(
+        self,
+        s: NDArray[np.float64],
+        reference: NDArray[np.float64] | None,
+        order: NDArray[np.intp] | None = None,
+        diabatic: NDArray[np.intp] | None = None,
+    ) -> FrameData:
+        """Eigen-decomposition and Davies data at the points ``s``.
+
+        Eigenvector signs are aligned to ``reference`` (a (d, d) eigenvector matrix)
+        when given, else fixed by making the largest component of each vector positive.
+        ``order`` ((d,) or (n, d)) relabels the levels: label a is the level of rank
+        ``order[a]`` in increasing energy (after a diabatic passage through a narrow
+        avoided crossing, labels follow the diabatic states, not the energy ranks).
+        The levels ``diabatic`` (labels) are replaced by the diabatic states, which
+        diagonalise dH/ds in their span, with energies the diagonal of H there (the
+        frame of a diabatic passage; their coupling in H is left out).
+        """
+        s = np.atleast_1d(np.asarray(s, dtype=float))
+        H, dH = self.hamiltonian_batch(s)
+        E, V = np.linalg.eigh(H)
+        d = self.dim
+        tol = frame_tol(E)
+        adapt_degenerate(E, V, dH, tol)
+        if d > 1:
+            min_level_gap = np.min(np.abs(np.diff(E, axis=1)), axis=1)
+        else:
+            min_level_gap = np.full(s.size, math.inf)
+        if order is not None:
+            idx = np.broadcast_to(np.asarray(order), E.shape)
+            E = np.take_along_axis(E, idx, axis=1)
+            V = np.take_along_axis(V, idx[:, None, :], axis=2)
+        if diabatic is not None:
+            E, V = diabatic_states(H, dH, E, V, diabatic)
+        clusters = degenerate_clusters(E, tol) if reference is not None else []
+        for n, members in clusters:  # parallel transport inside degenerate levels
+            V[n][:, members] = transported(V[n][:, members], reference[:, members])
+        if reference is None:
+            idx = np.argmax(np.abs(V), axis=1)  # (n, d)
+            sgn = np.sign(np.take_along_axis(V, idx[:, None, :], axis=1))[:, 0, :]
+        else:
+            sgn = np.sign(np.einsum("ia,nia->na", reference, V))
+        sgn[sgn == 0] = 1.0
+        V = V * sgn[:, None, :]
+        # energy gaps and derivative of the frame
+        dE = E[:, None, :] - E[:, :, None]  # [n, a, b] = E_b - E_a
+        off = ~np.eye(d, dtype=bool)
+        Vt = np.swapaxes(V, 1, 2)
+        Hp = Vt @ dH @ V
+        K = np.zeros_like(Hp)
+        if d > 1:
+            split = off[None] & (np.abs(dE) > tol)
+            K[split] = Hp[split] / dE[split]
+        for n, members in clusters:
+            K[n][np.ix_(members, members)] = transport_rotation(
+                E[n], V[n], Hp[n], members, reference[:, members]
+            )
+        # Davies rates: W[a, b] = sum_i gamma(E_b - E_a) |A_ab|^2, rate b -> a
+        g = np.asarray(self.gamma(dE.ravel())).reshape(dE.shape)
+        rates = np.zeros_like(dE)
+        diag_sq = np.zeros((s.size, d, d))
+        for op in self.operators:
+            Aop = Vt @ op @ V
+            rates += np.abs(Aop) ** 2
+            da = np.real(np.einsum("naa->na", Aop))
+            diag_sq += (da[:, :, None] - da[:, None, :]) ** 2
+        rates = rates * g
+        rates[:, ~off] = 0.0
+        out_rate = rates.sum(axis=1)  # R_b = sum_a rates[a, b]
+        W = rates.copy()
+        W[:, np.arange(d), np.arange(d)] = -out_rate
+        Gamma = 0.5 * (out_rate[:, :, None] + out_rate[:, None, :]) + 0.5 * self.gamma0 * diag_sq
+        omega = -dE  # omega_ab = E_a - E_b
+        lam = (-1j * omega - Gamma).astype(complex)
+        lam[:, ~off] = 0.0
+        # Gibbs populations and their s-derivative (Hellmann-Feynman: E_a' = Hp_aa)
+        Ep = np.einsum("naa->na", Hp)
+        wts = np.exp(-self.beta * (E - np.min(E, axis=1, keepdims=True)))
+        pi = wts / wts.sum(axis=1, keepdims=True)
+        mean_Ep = np.sum(pi * Ep, axis=1, keepdims=True)
+        dpi = -self.beta * pi * (Ep - mean_Ep)
+        # Bohr frequencies: distinct pairs must stay apart (secular structure)
+        if d > 2:
+            iu = np.triu_indices(d, 1)
+            bohr = np.sort(np.abs(omega)[:, iu[0], iu[1]], axis=1)
+            min_bohr_gap = np.min(np.diff(bohr, axis=1), axis=1)
+        else:
+            min_bohr_gap = np.full(s.size, math.inf)
+        return FrameData(
+            E=E,
+            V=V,
+            K=K,
+            W=W,
+            lam=lam,
+            pi=pi,
+            dpi=dpi,
+            slope=Ep,
+            min_level_gap=min_level_gap,
+            min_bohr_gap=min_bohr_gap,
+        )
