@@ -8,11 +8,12 @@ Run from the repository root (about 10-30 minutes on a 2-core machine)::
 
 For each invented problem of the kind users write first (equal fields, uncoupled
 qubits, chains, stars, rings and triangles with uniform couplings, a chain with random
-couplings, a 5-qubit chain and a 6-qubit ring) and each tf and k_end, one point of the default (``auto``) integrator runs
-in a child process, stopped after ``--limit`` seconds.  Beside it, the fully connected
-random instance of the same size from ``bench_eigenframe.py`` runs at the same tf and
-k_end, so the cost is read as a ratio measured in the same run (the machine is shared
-and noisy).  The bath and device are those of ``builtin:driven-qubit``.
+couplings, a 5-qubit chain and a 6-qubit ring) and each tf and k_end, one point of the
+default (``auto``) integrator runs in a child process, stopped after ``--limit``
+seconds.  Beside it, the fully connected random instance of the same size from
+``bench_eigenframe.py`` runs at the same tf and k_end, so the cost is read as a ratio
+measured in the same run (the machine is shared and noisy).  The bath and device are
+those of ``builtin:driven-qubit``.
 
 Each line: problem, qubits, tf, k_end, status, integrator, wall time, the complete
 instance's wall time and the ratio.  Copy the lines to benchmarks/RESULTS.md with the

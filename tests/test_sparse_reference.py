@@ -45,10 +45,11 @@ from qutip.core._brtensor import _BlochRedfieldElement
 from qutip.core._brtools import SpectraCoefficient, _EigenBasisTransform
 from scipy.special import betainc
 
-from schedforge.dynamics import System, simulate
+from schedforge.dynamics import simulate
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import BathSpec, ProblemSpec, Spec
+from schedforge.system import System
 
 #: k_B / hbar in rad/(ns K) (CODATA 2018 exact constants: k_B = 1.380649e-23 J/K,
 #: h = 6.62607015e-34 J s).
