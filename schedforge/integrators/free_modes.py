@@ -407,12 +407,19 @@ def transient_dressing(
     lam: NDArray[np.complex128],
     W: NDArray[np.float64],
     labels: NDArray[np.int64] | None = None,
+    fpp: float = 0.0,
 ) -> tuple[NDArray[np.float64], NDArray[np.complex128]]:
     """Components that free modes with amplitudes ``A`` induce elsewhere.
 
     Returns the population vector and the coherence matrix of
     ``sum_ab A_ab v_ab`` with the first-order dressing
     ``v_m = S_(m,ab) / (lam_ab - lam_m)``.
+
+    ``fpp`` (f'' at the node) adds the next term of the adiabatic expansion, the
+    slope of the forcing: with ``D = lam_ab - lam_m`` the induced component is
+    ``s / D - s' / D^2 + ...``, and ``s' = f'' K`` where f' = 0 (the end of a
+    schedule with k_end = 1, where the first-order term vanishes and this one
+    leads).  The part ``f'^2 dK/ds`` of s' and the drift of D are not included.
     """
     d = K.shape[0]
     off = ~np.eye(d, dtype=bool)
@@ -429,18 +436,22 @@ def transient_dressing(
     mask1 = mask1 & ~intra1
     mask2 = mask1.transpose(0, 2, 1) & ~intra2 & ~_resonant(den2, lam)
     mask1 = mask1 & ~_resonant(den1, lam)
+    den1 = np.where(mask1, den1, 1.0)
     with np.errstate(divide="ignore", invalid="ignore"):  # masked entries are dropped
-        t1 = np.where(mask1, num1 / np.where(mask1, den1, 1.0), 0.0).sum(axis=0)
+        q1 = np.where(mask1, num1 / den1, 0.0)
     # T2[a, c] = -sum_b A_ab fp K_bc / (lam_ac - lam_ab), c not in {a, b}
     num2 = A[:, :, None] * K[None, :, :]  # [a, b, c]: A_ab K_bc
+    den2 = np.where(mask2, den2, 1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        t2 = -np.where(mask2, num2 / np.where(mask2, den2, 1.0), 0.0).sum(axis=1)
-    coh = fp * (t1 + t2)
+        q2 = -np.where(mask2, num2 / den2, 0.0)
+    coh = fp * (q1.sum(axis=0) + q2.sum(axis=1))
+    if fpp != 0.0:  # the slope term: the same sums over one more power of the denominator
+        coh = coh + fpp * ((q1 / den1).sum(axis=0) + (q2 / den2).sum(axis=1))
     coh[~off] = 0.0
     # populations: (lam_ab - W)^(-1) s_ab with s_ab = fp K_ba (e_a - e_b)
-    u1 = np.where(off, A * fp * K.T / lam_safe, 0.0)
-    u2 = np.where(off, A * fp * K.T / lam_safe**2, 0.0)
+    u1 = np.where(off, A * K.T / lam_safe, 0.0)
+    u2 = np.where(off, A * K.T / lam_safe**2, 0.0)
     v1 = u1.sum(axis=1) - u1.sum(axis=0)
     v2 = u2.sum(axis=1) - u2.sum(axis=0)
-    pop = np.real(v1 + W @ v2)
+    pop = np.real(fp * (v1 + W @ v2) - fpp * v2)
     return pop, coh
