@@ -228,29 +228,21 @@ def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
     return DeviceSpec(**kw)
 
 
+def _validated(data: dict[str, Any], name: str, validator: Callable[[Any], Any]) -> Any:
+    """A section whose own validator checks every value (types included): the closed
+    schema here, the rules in one place for TOML and Python (``validator``)."""
+    known = [f.name for f in dataclasses.fields(_SECTIONS[name])]
+    table = _table(data.get(name, {}), name)
+    _check_keys(table, known, name)
+    return validator(_SECTIONS[name](**table))
+
+
 def _problem(data: dict[str, Any]) -> ProblemSpec:
-    kw = _section(
-        data,
-        "problem",
-        {"qubits": lambda v, p: v, "h": _array, "J": _array},
-    )
-    return check_problem(ProblemSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "problem", check_problem)
 
 
 def _bath(data: dict[str, Any]) -> BathSpec:
-    kw = _section(
-        data,
-        "bath",
-        {
-            "spectrum": _string,
-            "coupling": _string,
-            "eta": _number,
-            "cutoff_ghz": _number,
-            "temperature_mk": _number,
-            "lamb_shift": _boolean,
-        },
-    )
-    return check_bath(BathSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "bath", check_bath)
 
 
 def _points(value: Any, path: str) -> tuple[tuple[float, float], ...]:
@@ -379,9 +371,7 @@ def _sweep(data: dict[str, Any]) -> SweepSpec | None:
 def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
     if "waveform" not in data:
         return None
-    names = [f.name for f in dataclasses.fields(WaveformSpec)]
-    kw = _section(data, "waveform", dict.fromkeys(names, lambda v, p: v))
-    return check_waveform(WaveformSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "waveform", check_waveform)
 
 
 # -- [noise]: control errors (issue 17) -------------------------------------------

@@ -101,7 +101,7 @@ practice before playing it.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -609,24 +609,26 @@ def check_waveform(spec: WaveformSpec) -> WaveformSpec:
     Returns
     -------
     WaveformSpec
-        ``spec`` itself.
+        ``spec`` with numbers as ``float`` (counts as ``int``).
 
     Raises
     ------
     InputError
         Naming the ``waveform.*`` key and the rule.
     """
+    out: dict[str, Any] = {}
     for name in ("sample_rate_gsps", "bandwidth_mhz", "max_slope_per_ns"):
         value = getattr(spec, name)
-        if value is not None:
-            checks.number(value, f"waveform.{name}", gt=0)
+        out[name] = None if value is None else checks.number(value, f"waveform.{name}", gt=0)
     if spec.dac_bits is not None:
-        checks.integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
-    checks.choice(spec.filter, "waveform.filter", FILTERS)
+        out["dac_bits"] = checks.integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
+    out["filter"] = checks.choice(spec.filter, "waveform.filter", FILTERS)
     if spec.breakpoints is not None:
-        checks.integer(spec.breakpoints, "waveform.breakpoints", ge=2)
-    checks.number(spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0)
-    return spec
+        out["breakpoints"] = checks.integer(spec.breakpoints, "waveform.breakpoints", ge=2)
+    out["breakpoint_tolerance"] = checks.number(
+        spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0
+    )
+    return replace(spec, **out)
 
 
 def _check_spec(waveform: WaveformSpec) -> dict[str, Any]:
