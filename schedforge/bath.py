@@ -46,7 +46,7 @@ from typing import Any, Protocol, runtime_checkable
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from . import checks
+from .checks import boolean, choice, number
 from .errors import InputError
 from .limits import MAX_ENERGY_GHZ, MIN_CUTOFF_GHZ
 from .spec_model import BathSpec
@@ -381,14 +381,12 @@ def check_bath(spec: BathSpec) -> BathSpec:
     """
     return replace(
         spec,
-        spectrum=checks.choice(spec.spectrum, "bath.spectrum", tuple(SPECTRA)),
-        coupling=checks.choice(spec.coupling, "bath.coupling", COUPLINGS),
-        eta=checks.number(spec.eta, "bath.eta", ge=0),
-        cutoff_ghz=checks.number(
-            spec.cutoff_ghz, "bath.cutoff_ghz", ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ
-        ),
-        temperature_mk=checks.number(spec.temperature_mk, "bath.temperature_mk", gt=0),
-        lamb_shift=checks.boolean(spec.lamb_shift, "bath.lamb_shift"),
+        spectrum=choice(spec.spectrum, "bath.spectrum", tuple(SPECTRA)),
+        coupling=choice(spec.coupling, "bath.coupling", COUPLINGS),
+        eta=number(spec.eta, "bath.eta", ge=0),
+        cutoff_ghz=number(spec.cutoff_ghz, "bath.cutoff_ghz", ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ),
+        temperature_mk=number(spec.temperature_mk, "bath.temperature_mk", gt=0),
+        lamb_shift=boolean(spec.lamb_shift, "bath.lamb_shift"),
     )
 
 

@@ -28,8 +28,8 @@ from typing import Any
 
 import numpy as np
 
-from . import checks
 from .bath import COUPLINGS, SPECTRA, check_bath
+from .checks import ECHO_CHARS, boolean, choice, clip, integer, number, shown, suggest
 from .errors import InputError
 from .hamiltonian import check_problem
 from .limits import MAX_COEFFICIENT, MAX_ENERGY_GHZ, MAX_QUBITS, MIN_CUTOFF_GHZ
@@ -93,14 +93,14 @@ _TOP_KEYS = ("version", *_SECTIONS)
 # ---------------------------------------------------------------------------
 # value readers (the checks shared with the model's validators, and TOML shapes)
 # ---------------------------------------------------------------------------
-_ECHO_CHARS = checks.ECHO_CHARS
-_clip = checks.clip
-_shown = checks.shown
-_number = checks.number
-_integer = checks.integer
-_string = checks.choice
-_boolean = checks.boolean
-_suggest = checks.suggest
+_ECHO_CHARS = ECHO_CHARS
+_clip = clip
+_shown = shown
+_number = number
+_integer = integer
+_string = choice
+_boolean = boolean
+_suggest = suggest
 
 
 def _clip_path(path: Any) -> str:

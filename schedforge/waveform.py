@@ -108,8 +108,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
-from . import checks
 from .breakpoints import BreakpointDesign, design_breakpoints
+from .checks import choice, integer, number
 from .errors import InputError
 from .schedules import Schedule
 from .spec_model import WaveformSpec
@@ -619,13 +619,13 @@ def check_waveform(spec: WaveformSpec) -> WaveformSpec:
     out: dict[str, Any] = {}
     for name in ("sample_rate_gsps", "bandwidth_mhz", "max_slope_per_ns"):
         value = getattr(spec, name)
-        out[name] = None if value is None else checks.number(value, f"waveform.{name}", gt=0)
+        out[name] = None if value is None else number(value, f"waveform.{name}", gt=0)
     if spec.dac_bits is not None:
-        out["dac_bits"] = checks.integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
-    out["filter"] = checks.choice(spec.filter, "waveform.filter", FILTERS)
+        out["dac_bits"] = integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
+    out["filter"] = choice(spec.filter, "waveform.filter", FILTERS)
     if spec.breakpoints is not None:
-        out["breakpoints"] = checks.integer(spec.breakpoints, "waveform.breakpoints", ge=2)
-    out["breakpoint_tolerance"] = checks.number(
+        out["breakpoints"] = integer(spec.breakpoints, "waveform.breakpoints", ge=2)
+    out["breakpoint_tolerance"] = number(
         spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0
     )
     return replace(spec, **out)
