@@ -28,6 +28,7 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
+from .schedules import schedule_label
 from .spec_model import Spec
 
 __all__ = [
@@ -49,8 +50,7 @@ NOISE_PLOT_PREFIX = "noise_"
 
 def _label(r: Mapping[str, Any]) -> str:
     """``"beta k=0/2"`` (``"linear"``), with ``" played"`` for a realized twin."""
-    fam, k0, k1 = r["family"], r["k_start"], r["k_end"]
-    name = fam if fam == "linear" else f"{fam} k={k0:g}/{k1:g}"
+    name = schedule_label(r["family"], r["k_start"], r["k_end"])
     return name + (" played" if r.get("variant") == "realized" else "")
 
 
