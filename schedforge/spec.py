@@ -30,6 +30,7 @@ import numpy as np
 
 from .bath import COUPLINGS, SPECTRA, check_bath
 from .checks import ECHO_CHARS, boolean, choice, clip, integer, number, shown, suggest
+from .device import check_device
 from .errors import InputError
 from .hamiltonian import check_problem
 from .limits import MAX_COEFFICIENT, MAX_ENERGY_GHZ, MAX_QUBITS, MIN_CUTOFF_GHZ
@@ -177,31 +178,11 @@ def _positive(value: Any, path: str) -> float:
     return _number(value, path, gt=0)
 
 
-def _sha256_hex(value: Any, path: str) -> str:
-    text = _string(value, path)
-    if len(text) != 64 or any(c not in "0123456789abcdef" for c in text):
-        raise InputError(path, f"must be 64 lowercase hex digits (a SHA-256), got {_clip(text)}")
-    return text
-
-
 def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
-    kw = _section(
-        data,
-        "device",
-        {
-            "curves": _string,
-            "A0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
-            "B0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
-            "curves_sha256": _sha256_hex,
-        },
-    )
-    curves = kw.get("curves", DeviceSpec.curves)
+    spec = _validated(data, "device", check_device)
+    curves = spec.curves
     if curves == "linear":
-        if "curves_sha256" in kw:
-            raise InputError("device.curves_sha256", 'applies only to a curves CSV, not "linear"')
-        return DeviceSpec(**kw)
-    if not curves.strip():
-        raise InputError("device.curves", 'must be "linear" or the path of a CSV file')
+        return spec
     path = Path(os.path.expanduser(curves))
     if not path.is_absolute():
         path = base_dir / path
@@ -216,16 +197,14 @@ def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
     from .device_table import file_sha256
 
     digest = file_sha256(path)
-    pinned = kw.get("curves_sha256")
+    pinned = spec.curves_sha256
     if pinned is not None and pinned != digest:
         raise InputError(
             "device.curves_sha256",
             f"does not match {path} (its SHA-256 is {digest[:12]}..., the spec pins "
             f"{pinned[:12]}...): the file changed since this spec was written",
         )
-    kw["curves"] = str(path)
-    kw["curves_sha256"] = digest
-    return DeviceSpec(**kw)
+    return dataclasses.replace(spec, curves=str(path), curves_sha256=digest)
 
 
 def _validated(data: dict[str, Any], name: str, validator: Callable[[Any], Any]) -> Any:
