@@ -367,10 +367,11 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
 
     path = Path(folder) / STORE_NAME
     if not path.exists():
-        csv_path = Path(folder) / POINTS_CSV_NAME
-        if csv_path.is_file() and any(
-            parse_variant(str(r["variant"])) is not None for r in read_points_csv(csv_path)
-        ):
+        try:
+            rows = read_points_csv(Path(folder) / POINTS_CSV_NAME)
+        except InputError:  # missing or damaged: the sweep report's own checks say how
+            return None
+        if any(parse_variant(str(r["variant"])) is not None for r in rows):
             raise InputError(
                 "DIR",
                 f"holds a noise ensemble without its store {STORE_NAME}: its report needs the "
