@@ -380,7 +380,7 @@ def test_crossing_bound_of_the_order_of_the_result_leaves_no_number(monkeypatch)
     system = _crossing_system(3e-4)
     f = make_schedule("beta", k_end=2)
     monkeypatch.setattr(ef, "FREE_MODE_RTOL", 0.0)  # every bound "matters"
-    monkeypatch.setattr(ef, "FALLBACK_PHASE_LIMIT", 0.0)  # no handover
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 0.0)  # no handover
     first = simulate(system, f, 100.0, integrator="eigenframe")
     ratio = first.stats["crossing_error_estimate"] / first.trace_distance
     assert first.ok and any("Landau-Zener" in w for w in first.warnings)
@@ -516,3 +516,34 @@ def test_closed_system_falls_back() -> None:
     assert "fallback" in res.integrator
     assert res.stats["fallback"] == "closed system"
     assert res.status == "ok"
+
+
+def test_handover_follows_the_estimated_time_of_the_general_integrator(monkeypatch) -> None:
+    # A custom initial state is outside the eigenframe integrator's assumptions, so it
+    # hands over to the general integrator when that is affordable (estimated time
+    # within HANDOVER_BUDGET_S) and otherwise fails, naming the estimate and the way out.
+    system = System.from_spec(_spec_with(TWO_QUBITS))
+    rho0 = np.eye(system.dim, dtype=complex) / system.dim
+    custom = System(system.hamiltonian, system.bath, rho0)
+    f = make_schedule("beta", k_end=1)
+    tf = 5.0
+    estimate = ef.general_time_estimate(custom.dim, ef._phase(custom, tf))
+    assert estimate > 0.0
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 2.0 * estimate)
+    handed = simulate(custom, f, tf, integrator="eigenframe")
+    ref = simulate(custom, f, tf, integrator="general")
+    assert handed.integrator == "general (fallback from eigenframe)"
+    assert handed.trace_distance == ref.trace_distance
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 0.5 * estimate)
+    refused = simulate(custom, f, tf, integrator="eigenframe")
+    assert refused.status == "failed" and math.isnan(refused.trace_distance)
+    assert "custom initial state" in refused.message
+    assert 'name integrator "general"' in refused.message
+
+
+def test_general_time_estimate_grows_as_the_generator_beyond_measured_sizes() -> None:
+    # per radian: the measured table up to d = 64, then d^4 (the generator's size)
+    largest = max(ef.GENERAL_S_PER_RAD)
+    per_rad = ef.GENERAL_S_PER_RAD[largest]
+    assert ef.general_time_estimate(3, 100.0) == ef.GENERAL_S_PER_RAD[4] * 100.0
+    assert ef.general_time_estimate(2 * largest, 1.0) == pytest.approx(16.0 * per_rad)
