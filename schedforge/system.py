@@ -34,6 +34,7 @@ from .davies import (
 from .device import make_device_curves
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
+from .spec_model import INITIAL_STATES
 from .units import GHZ_TO_RAD_PER_NS, beta_from_mk
 
 __all__ = ["System", "curve_warnings"]
@@ -91,7 +92,7 @@ class System:
         if isinstance(initial, np.ndarray):
             self._custom_initial = _check_density_matrix(initial, hamiltonian.dim)
             initial = "custom"
-        elif initial not in ("gibbs", "ground"):
+        elif initial not in INITIAL_STATES:
             raise InputError("initial.state", f'must be "gibbs" or "ground", got {initial!r}')
         if bath is not None and bath.dim != hamiltonian.dim:
             raise InputError(
@@ -397,11 +398,7 @@ def _system_from_parts(
 ) -> System:
     curves = make_device_curves(device)
     ham = AnnealingHamiltonian(curves, problem)
-    bath = make_bath(bath_spec, ham.n_qubits)
-    if not (np.isfinite(bath_spec.temperature_mk) and bath_spec.temperature_mk > 0):
-        raise InputError(
-            "bath.temperature_mk", f"must be a finite number > 0, got {bath_spec.temperature_mk!r}"
-        )
+    bath = make_bath(bath_spec, ham.n_qubits)  # checks the [bath] section, temperature included
     tol = None if secular_tol_ghz is None else secular_tol_ghz * GHZ_TO_RAD_PER_NS
     return System(
         ham, bath, initial.state, beta=beta_from_mk(bath_spec.temperature_mk), degeneracy_tol=tol
