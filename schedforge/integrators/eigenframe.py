@@ -157,6 +157,10 @@ RESOLVED_PHASE_LIMIT = 1.0e4
 #: against resolved runs) the estimate exceeded the true error by 2.4x or more, so this
 #: keeps the true error below 1e-6.
 FREE_MODE_RTOL = 2.0e-6
+#: Factor on the sharper free-mode estimate (the dressing's effect times its ratio).
+#: Calibrated on the driven qubit, k_end 0 and 1, tf 40-140 ns, against resolved runs
+#: at rtol 1e-12: the true error was 0.27-2.84 times the unscaled estimate.
+SHARPENED_SAFETY = 3.0
 #: A Landau-Zener bound above this fraction of the trace distance leaves no number to
 #: report: the point fails (with the bound in its message) instead of carrying a warning.
 CROSSING_TRUST = 0.1
@@ -254,7 +258,7 @@ def _sharpen_estimate(out: IntegrationOutcome, run: Any) -> None:
     bare = run(dress=False)
     if bare.status == "ok":
         effect = _trace_distance(out.deviation - bare.deviation)
-        second = effect * out.stats["max_dressing_ratio"]
+        second = SHARPENED_SAFETY * effect * out.stats["max_dressing_ratio"]
         out.stats["free_mode_error_estimate"] = min(out.stats["free_mode_error_estimate"], second)
         out.stats["dressing_effect"] = effect
 
