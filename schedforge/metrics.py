@@ -25,7 +25,7 @@ plots' axis labels and bounds.
 
 Adding a metric: write its function ``(system, dev) -> float`` here and add a
 :class:`Metric` to :data:`METRICS` (its name becomes a column: a lower-case
-identifier); describe it in the README's glossary of ``points.csv``.  Nothing else
+identifier); name it in the README (``simulate``'s outputs).  Nothing else
 changes.  The store, the CSV and the analysis read the registry when they are
 imported: change it here, not at run time.
 

@@ -66,6 +66,7 @@ from .device_curves import DeviceCurves, LinearCurves
 from .error_law import CLOSED, OPEN, law_time_scale_ns
 from .errors import InputError
 from .problem_families import IsingProblem
+from .schedules import schedule_label
 from .spec_model import NoiseSpec, Spec
 
 __all__ = [
@@ -326,9 +327,9 @@ class EnsemblePoint:
 
     def label(self) -> str:
         """Short text, e.g. ``"beta k=0/2 tf=100 ns draw 7"`` (``" realized"`` appended)."""
-        k = "" if self.family == "linear" else f" k={self.k_start:g}/{self.k_end:g}"
+        name = schedule_label(self.family, self.k_start, self.k_end)
         d = "nominal" if self.draw == NOMINAL else f"draw {self.draw}"
-        return f"{self.family}{k} tf={self.tf_ns:g} ns {d}" + (" realized" if self.played else "")
+        return f"{name} tf={self.tf_ns:g} ns {d}" + (" realized" if self.played else "")
 
 
 def parse_variant(variant: str) -> tuple[int, str] | None:

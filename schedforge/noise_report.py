@@ -28,6 +28,7 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
+from .schedules import schedule_label
 from .spec_model import Spec
 
 __all__ = [
@@ -49,8 +50,7 @@ NOISE_PLOT_PREFIX = "noise_"
 
 def _label(r: Mapping[str, Any]) -> str:
     """``"beta k=0/2"`` (``"linear"``), with ``" played"`` for a realized twin."""
-    fam, k0, k1 = r["family"], r["k_start"], r["k_end"]
-    name = fam if fam == "linear" else f"{fam} k={k0:g}/{k1:g}"
+    name = schedule_label(r["family"], r["k_start"], r["k_end"])
     return name + (" played" if r.get("variant") == "realized" else "")
 
 
@@ -367,10 +367,11 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
 
     path = Path(folder) / STORE_NAME
     if not path.exists():
-        csv_path = Path(folder) / POINTS_CSV_NAME
-        if csv_path.is_file() and any(
-            parse_variant(str(r["variant"])) is not None for r in read_points_csv(csv_path)
-        ):
+        try:
+            rows = read_points_csv(Path(folder) / POINTS_CSV_NAME)
+        except InputError:  # missing or damaged: the sweep report's own checks say how
+            return None
+        if any(parse_variant(str(r["variant"])) is not None for r in rows):
             raise InputError(
                 "DIR",
                 f"holds a noise ensemble without its store {STORE_NAME}: its report needs the "

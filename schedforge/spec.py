@@ -34,6 +34,7 @@ from .errors import InputError
 from .hamiltonian import check_problem
 from .limits import MAX_COEFFICIENT, MAX_ENERGY_GHZ, MAX_QUBITS, MIN_CUTOFF_GHZ
 from .spec_model import (
+    INITIAL_STATES,
     BathSpec,
     DeviceSpec,
     InitialSpec,
@@ -87,8 +88,6 @@ _SECTIONS: dict[str, type] = {
     "noise": NoiseSpec,
 }
 _TOP_KEYS = ("version", *_SECTIONS)
-
-INITIAL_STATES = ("gibbs", "ground")
 
 
 # ---------------------------------------------------------------------------

@@ -17,6 +17,7 @@ from dataclasses import MISSING, Field, dataclass, field, fields, is_dataclass, 
 from typing import Any
 
 __all__ = [
+    "INITIAL_STATES",
     "BathSpec",
     "DeviceSpec",
     "InitialSpec",
@@ -103,6 +104,10 @@ class ScheduleSpec:
     tf_ns: float = 1000.0
     tail: float = 0.2
     points: tuple[tuple[float, float], ...] | None = None
+
+
+#: Initial states a spec can name (``initial.state``).
+INITIAL_STATES: tuple[str, ...] = ("gibbs", "ground")
 
 
 @dataclass(frozen=True)

@@ -40,6 +40,7 @@ from .davies import (
 from .device import make_device_curves
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
+from .spec_model import INITIAL_STATES
 from .symmetry import (
     SECTOR_COHERENCE_MAX,
     SECTOR_WEIGHT_MIN,
@@ -133,7 +134,7 @@ class System:
         if isinstance(initial, np.ndarray):
             self._custom_initial = _check_density_matrix(initial, hamiltonian.dim)
             initial = "custom"
-        elif initial not in ("gibbs", "ground"):
+        elif initial not in INITIAL_STATES:
             raise InputError("initial.state", f'must be "gibbs" or "ground", got {initial!r}')
         if bath is not None and bath.dim != hamiltonian.dim:
             raise InputError(
@@ -588,11 +589,7 @@ def _system_from_parts(
 ) -> System:
     curves = make_device_curves(device)
     ham = AnnealingHamiltonian(curves, problem)
-    bath = make_bath(bath_spec, ham.n_qubits)
-    if not (np.isfinite(bath_spec.temperature_mk) and bath_spec.temperature_mk > 0):
-        raise InputError(
-            "bath.temperature_mk", f"must be a finite number > 0, got {bath_spec.temperature_mk!r}"
-        )
+    bath = make_bath(bath_spec, ham.n_qubits)  # checks the [bath] section, temperature included
     tol = None if secular_tol_ghz is None else secular_tol_ghz * GHZ_TO_RAD_PER_NS
     return System(
         ham, bath, initial.state, beta=beta_from_mk(bath_spec.temperature_mk), degeneracy_tol=tol

@@ -384,7 +384,7 @@ def test_amplitude_errors_of_tabulated_curves(tmp_path: Path) -> None:
 def test_each_draw_builds_its_system_and_preflight_once(tmp_path: Path, monkeypatch) -> None:
     """20 draws at 2 anneal times (more draws than any small cache of systems): every
     draw's pre-flight runs once, not once per point."""
-    from schedforge.dynamics import System as system_class
+    from schedforge.system import System as system_class
 
     calls: list[int] = []
     original = system_class._run_preflight

@@ -50,9 +50,10 @@ def register(subparsers: Any) -> None:
 
 def _name(r: Any) -> str:
     """``"beta 0/2"``, ``"linear"``, with ``" played"`` for a realized twin."""
-    name = (
-        r["family"] if r["family"] == "linear" else f"{r['family']} {r['k_start']:g}/{r['k_end']:g}"
-    )
+    from ..schedules import FAMILIES, Schedule
+
+    has_k = FAMILIES.get(r["family"], Schedule).has_k
+    name = f"{r['family']} {r['k_start']:g}/{r['k_end']:g}" if has_k else r["family"]
     return name + (" played" if r.get("variant") == "realized" else "")
 
 

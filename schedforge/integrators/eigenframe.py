@@ -109,6 +109,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from ..metrics import trace_distance as _trace_distance
 from ..system import System
 from .base import INTEGRATORS, IntegrationOutcome, register_integrator
 from .conserved import integrate_by_sector
@@ -196,11 +197,6 @@ def _fallback(
         "fallback": reason,
     }
     return type(out)(out.deviation, out.rho, out.status, out.message, new_stats)
-
-
-def _trace_distance(dev: NDArray[Any]) -> float:
-    """Half the trace norm of a Hermitian matrix."""
-    return 0.5 * float(np.sum(np.abs(np.linalg.eigvalsh(0.5 * (dev + dev.conj().T)))))
 
 
 def _needs_resolving(out: IntegrationOutcome) -> bool:
