@@ -40,13 +40,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Protocol, runtime_checkable
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from . import checks
+from .checks import boolean, choice, number
 from .errors import InputError
 from .limits import MAX_ENERGY_GHZ, MIN_CUTOFF_GHZ
 from .spec_model import BathSpec
@@ -372,20 +372,22 @@ def check_bath(spec: BathSpec) -> BathSpec:
     Returns
     -------
     BathSpec
-        ``spec`` itself.
+        ``spec`` with numbers as ``float``.
 
     Raises
     ------
     InputError
         Naming the field and the rule.
     """
-    checks.choice(spec.spectrum, "bath.spectrum", tuple(SPECTRA))
-    checks.choice(spec.coupling, "bath.coupling", COUPLINGS)
-    checks.number(spec.eta, "bath.eta", ge=0)
-    checks.number(spec.cutoff_ghz, "bath.cutoff_ghz", ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ)
-    checks.number(spec.temperature_mk, "bath.temperature_mk", gt=0)
-    checks.boolean(spec.lamb_shift, "bath.lamb_shift")
-    return spec
+    return replace(
+        spec,
+        spectrum=choice(spec.spectrum, "bath.spectrum", tuple(SPECTRA)),
+        coupling=choice(spec.coupling, "bath.coupling", COUPLINGS),
+        eta=number(spec.eta, "bath.eta", ge=0),
+        cutoff_ghz=number(spec.cutoff_ghz, "bath.cutoff_ghz", ge=MIN_CUTOFF_GHZ, le=MAX_ENERGY_GHZ),
+        temperature_mk=number(spec.temperature_mk, "bath.temperature_mk", gt=0),
+        lamb_shift=boolean(spec.lamb_shift, "bath.lamb_shift"),
+    )
 
 
 def _ohmic(spec: BathSpec) -> OhmicSpectralDensity:

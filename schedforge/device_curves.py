@@ -15,8 +15,6 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from .errors import InputError
-
 __all__ = ["DeviceCurves", "LinearCurves"]
 
 
@@ -67,9 +65,9 @@ class LinearCurves(DeviceCurves):
     continuity = None
 
     def __init__(self, A0_ghz: float, B0_ghz: float) -> None:
-        for name, v in (("device.A0_ghz", A0_ghz), ("device.B0_ghz", B0_ghz)):
+        for name, v in (("A0_ghz", A0_ghz), ("B0_ghz", B0_ghz)):  # the spec: check_device
             if not (np.isfinite(v) and v > 0):
-                raise InputError(name, f"must be a finite number > 0, got {v!r}")
+                raise ValueError(f"{name} must be a finite number > 0, got {v!r}")
         self.A0_ghz = float(A0_ghz)
         self.B0_ghz = float(B0_ghz)
 

@@ -25,7 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import sparse
 
-from . import checks
+from .checks import integer, number, shown
 from .device_curves import DeviceCurves
 from .errors import InputError
 from .limits import MAX_COEFFICIENT, MAX_QUBITS
@@ -137,22 +137,22 @@ def check_problem(problem: ProblemSpec) -> ProblemSpec:
         coefficients within :data:`~schedforge.limits.MAX_COEFFICIENT`, couplings
         ``[i, j, J_ij]`` with 0 <= i < j < qubits, each pair once.
     """
-    n = checks.integer(problem.qubits, "problem.qubits", ge=1, le=MAX_QUBITS)
+    n = integer(problem.qubits, "problem.qubits", ge=1, le=MAX_QUBITS)
     if isinstance(problem.h, str) or not isinstance(problem.h, Sequence):
-        raise InputError("problem.h", f"must be an array, got {checks.shown(problem.h)}")
+        raise InputError("problem.h", f"must be an array, got {shown(problem.h)}")
     if len(problem.h) != n:
         raise InputError("problem.h", f"must have one entry per qubit ({n}), got {len(problem.h)}")
     h = tuple(_coefficient(v, f"problem.h[{i}]") for i, v in enumerate(problem.h))
     if isinstance(problem.J, str) or not isinstance(problem.J, Sequence):
-        raise InputError("problem.J", f"must be an array, got {checks.shown(problem.J)}")
+        raise InputError("problem.J", f"must be an array, got {shown(problem.J)}")
     pairs: set[tuple[int, int]] = set()
     couplings = []
     for idx, entry in enumerate(problem.J):
         where = f"problem.J[{idx}]"
         if isinstance(entry, str) or not isinstance(entry, Sequence) or len(entry) != 3:
-            raise InputError(where, f"must be an array [i, j, J_ij], got {checks.shown(entry)}")
-        i = checks.integer(entry[0], f"{where}[0]", ge=0)
-        j = checks.integer(entry[1], f"{where}[1]", ge=0)
+            raise InputError(where, f"must be an array [i, j, J_ij], got {shown(entry)}")
+        i = integer(entry[0], f"{where}[0]", ge=0)
+        j = integer(entry[1], f"{where}[1]", ge=0)
         value = _coefficient(entry[2], f"{where}[2]")
         if not i < j < n:
             raise InputError(
@@ -166,7 +166,7 @@ def check_problem(problem: ProblemSpec) -> ProblemSpec:
 
 
 def _coefficient(value: object, path: str) -> float:
-    return checks.number(value, path, ge=-MAX_COEFFICIENT, le=MAX_COEFFICIENT)
+    return number(value, path, ge=-MAX_COEFFICIENT, le=MAX_COEFFICIENT)
 
 
 class AnnealingHamiltonian:

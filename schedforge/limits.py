@@ -84,9 +84,9 @@ def _curve_samples(device: Any) -> tuple[list[float], list[float]]:
     """A(s), B(s) at the table rows (or at s = 0 and 1 for linear curves), GHz."""
     if device.curves == "linear":
         return [device.A0_ghz, 0.0], [0.0, device.B0_ghz]
-    from .device import make_device_curves
+    from .device_table import TabulatedCurves
 
-    curves = make_device_curves(device)
+    curves = TabulatedCurves.from_csv(device.curves, sha256=device.curves_sha256)
     values = curves.values
     return [float(v) for v in values[:, 0]], [float(v) for v in values[:, 1]]
 

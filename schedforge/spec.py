@@ -28,8 +28,9 @@ from typing import Any
 
 import numpy as np
 
-from . import checks
 from .bath import COUPLINGS, SPECTRA, check_bath
+from .checks import ECHO_CHARS, boolean, choice, clip, integer, number, shown, suggest
+from .device import check_device
 from .errors import InputError
 from .hamiltonian import check_problem
 from .limits import MAX_COEFFICIENT, MAX_ENERGY_GHZ, MAX_QUBITS, MIN_CUTOFF_GHZ
@@ -93,14 +94,14 @@ _TOP_KEYS = ("version", *_SECTIONS)
 # ---------------------------------------------------------------------------
 # value readers (the checks shared with the model's validators, and TOML shapes)
 # ---------------------------------------------------------------------------
-_ECHO_CHARS = checks.ECHO_CHARS
-_clip = checks.clip
-_shown = checks.shown
-_number = checks.number
-_integer = checks.integer
-_string = checks.choice
-_boolean = checks.boolean
-_suggest = checks.suggest
+_ECHO_CHARS = ECHO_CHARS
+_clip = clip
+_shown = shown
+_number = number
+_integer = integer
+_string = choice
+_boolean = boolean
+_suggest = suggest
 
 
 def _clip_path(path: Any) -> str:
@@ -177,31 +178,11 @@ def _positive(value: Any, path: str) -> float:
     return _number(value, path, gt=0)
 
 
-def _sha256_hex(value: Any, path: str) -> str:
-    text = _string(value, path)
-    if len(text) != 64 or any(c not in "0123456789abcdef" for c in text):
-        raise InputError(path, f"must be 64 lowercase hex digits (a SHA-256), got {_clip(text)}")
-    return text
-
-
 def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
-    kw = _section(
-        data,
-        "device",
-        {
-            "curves": _string,
-            "A0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
-            "B0_ghz": lambda v, p: _number(v, p, gt=0, le=MAX_ENERGY_GHZ),
-            "curves_sha256": _sha256_hex,
-        },
-    )
-    curves = kw.get("curves", DeviceSpec.curves)
+    spec = _validated(data, "device", check_device)
+    curves = spec.curves
     if curves == "linear":
-        if "curves_sha256" in kw:
-            raise InputError("device.curves_sha256", 'applies only to a curves CSV, not "linear"')
-        return DeviceSpec(**kw)
-    if not curves.strip():
-        raise InputError("device.curves", 'must be "linear" or the path of a CSV file')
+        return spec
     path = Path(os.path.expanduser(curves))
     if not path.is_absolute():
         path = base_dir / path
@@ -216,41 +197,31 @@ def _device(data: dict[str, Any], base_dir: Path) -> DeviceSpec:
     from .device_table import file_sha256
 
     digest = file_sha256(path)
-    pinned = kw.get("curves_sha256")
+    pinned = spec.curves_sha256
     if pinned is not None and pinned != digest:
         raise InputError(
             "device.curves_sha256",
             f"does not match {path} (its SHA-256 is {digest[:12]}..., the spec pins "
             f"{pinned[:12]}...): the file changed since this spec was written",
         )
-    kw["curves"] = str(path)
-    kw["curves_sha256"] = digest
-    return DeviceSpec(**kw)
+    return dataclasses.replace(spec, curves=str(path), curves_sha256=digest)
+
+
+def _validated(data: dict[str, Any], name: str, validator: Callable[[Any], Any]) -> Any:
+    """A section whose own validator checks every value (types included): the closed
+    schema here, the rules in one place for TOML and Python (``validator``)."""
+    known = [f.name for f in dataclasses.fields(_SECTIONS[name])]
+    table = _table(data.get(name, {}), name)
+    _check_keys(table, known, name)
+    return validator(_SECTIONS[name](**table))
 
 
 def _problem(data: dict[str, Any]) -> ProblemSpec:
-    kw = _section(
-        data,
-        "problem",
-        {"qubits": lambda v, p: v, "h": _array, "J": _array},
-    )
-    return check_problem(ProblemSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "problem", check_problem)
 
 
 def _bath(data: dict[str, Any]) -> BathSpec:
-    kw = _section(
-        data,
-        "bath",
-        {
-            "spectrum": _string,
-            "coupling": _string,
-            "eta": _number,
-            "cutoff_ghz": _number,
-            "temperature_mk": _number,
-            "lamb_shift": _boolean,
-        },
-    )
-    return check_bath(BathSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "bath", check_bath)
 
 
 def _points(value: Any, path: str) -> tuple[tuple[float, float], ...]:
@@ -379,9 +350,7 @@ def _sweep(data: dict[str, Any]) -> SweepSpec | None:
 def _waveform(data: dict[str, Any]) -> WaveformSpec | None:
     if "waveform" not in data:
         return None
-    names = [f.name for f in dataclasses.fields(WaveformSpec)]
-    kw = _section(data, "waveform", dict.fromkeys(names, lambda v, p: v))
-    return check_waveform(WaveformSpec(**kw))  # the section's rules, shared with Python
+    return _validated(data, "waveform", check_waveform)
 
 
 # -- [noise]: control errors (issue 17) -------------------------------------------

@@ -101,15 +101,15 @@ practice before playing it.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import special
 
-from . import checks
 from .breakpoints import BreakpointDesign, design_breakpoints
+from .checks import choice, integer, number
 from .errors import InputError
 from .schedules import Schedule
 from .spec_model import WaveformSpec
@@ -609,24 +609,26 @@ def check_waveform(spec: WaveformSpec) -> WaveformSpec:
     Returns
     -------
     WaveformSpec
-        ``spec`` itself.
+        ``spec`` with numbers as ``float`` (counts as ``int``).
 
     Raises
     ------
     InputError
         Naming the ``waveform.*`` key and the rule.
     """
+    out: dict[str, Any] = {}
     for name in ("sample_rate_gsps", "bandwidth_mhz", "max_slope_per_ns"):
         value = getattr(spec, name)
-        if value is not None:
-            checks.number(value, f"waveform.{name}", gt=0)
+        out[name] = None if value is None else number(value, f"waveform.{name}", gt=0)
     if spec.dac_bits is not None:
-        checks.integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
-    checks.choice(spec.filter, "waveform.filter", FILTERS)
+        out["dac_bits"] = integer(spec.dac_bits, "waveform.dac_bits", ge=1, le=32)
+    out["filter"] = choice(spec.filter, "waveform.filter", FILTERS)
     if spec.breakpoints is not None:
-        checks.integer(spec.breakpoints, "waveform.breakpoints", ge=2)
-    checks.number(spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0)
-    return spec
+        out["breakpoints"] = integer(spec.breakpoints, "waveform.breakpoints", ge=2)
+    out["breakpoint_tolerance"] = number(
+        spec.breakpoint_tolerance, "waveform.breakpoint_tolerance", gt=0
+    )
+    return replace(spec, **out)
 
 
 def _check_spec(waveform: WaveformSpec) -> dict[str, Any]:

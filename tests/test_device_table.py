@@ -131,3 +131,28 @@ def test_missing_file_and_negative_overshoot(tmp_path: Path) -> None:
     a = np.where(s < 0.75, 1.0, 0.0)
     with pytest.raises(InputError, match="dips below 0"):
         TabulatedCurves.from_csv(_write(tmp_path, _table(s, a, s)))
+
+
+@pytest.mark.parametrize(
+    ("changes", "field"),
+    [
+        ({"A0_ghz": 0.0}, "device.A0_ghz"),
+        ({"B0_ghz": float("inf")}, "device.B0_ghz"),
+        ({"A0_ghz": 2e6}, "device.A0_ghz"),
+        ({"curves_sha256": "abc"}, "device.curves_sha256"),
+        ({"curves_sha256": "0" * 64}, "device.curves_sha256"),  # not for linear curves
+        ({"curves": " "}, "device.curves"),
+    ],
+)
+def test_device_rules_are_the_same_from_toml_and_from_python(
+    changes: dict[str, object], field: str
+) -> None:
+    from schedforge.spec import parse_spec
+    from schedforge.spec_model import DeviceSpec
+
+    with pytest.raises(InputError) as from_toml:
+        parse_spec({"version": 1, "device": changes})
+    with pytest.raises(InputError) as from_python:
+        make_device_curves(DeviceSpec(**changes))  # type: ignore[arg-type]
+    assert from_toml.value.field == from_python.value.field == field
+    assert str(from_toml.value) == str(from_python.value)

@@ -380,7 +380,7 @@ def test_crossing_bound_of_the_order_of_the_result_leaves_no_number(monkeypatch)
     system = _crossing_system(3e-4)
     f = make_schedule("beta", k_end=2)
     monkeypatch.setattr(ef, "FREE_MODE_RTOL", 0.0)  # every bound "matters"
-    monkeypatch.setattr(ef, "FALLBACK_PHASE_LIMIT", 0.0)  # no handover
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 0.0)  # no handover
     first = simulate(system, f, 100.0, integrator="eigenframe")
     ratio = first.stats["crossing_error_estimate"] / first.trace_distance
     assert first.ok and any("Landau-Zener" in w for w in first.warnings)
@@ -389,6 +389,29 @@ def test_crossing_bound_of_the_order_of_the_result_leaves_no_number(monkeypatch)
     assert failed.status == "failed"
     assert "Landau-Zener" in failed.message and "not known" in failed.message
     assert math.isnan(failed.trace_distance)
+
+
+@pytest.mark.slow
+def test_crossing_bound_relaxes_after_the_crossing() -> None:
+    # The crossing at s = 0.84 of a 1e5 ns anneal is followed by 1.6e4 ns of relaxation.
+    # Before the bound relaxed with the state, it stayed at 9.5e-8, twice the result
+    # (4.6e-8), and the point failed though nothing of the passage is left at the end.
+    # Now the point keeps its number, and that number is the open-system law's: the
+    # coefficient C_2 predicted from L(1) alone (schedforge.prediction; the law of the
+    # flat-end anneal) times tf^-3, to 1 %.
+    from schedforge.prediction import predicted_coefficient
+
+    system = _crossing_system(3e-4)
+    f = make_schedule("beta", k_end=2)
+    tf = 1e5
+    res = simulate(system, f, tf, integrator="eigenframe")
+    assert res.ok and res.integrator == "eigenframe", res.message
+    assert res.stats["diabatic_crossings"] == 1
+    assert res.stats["crossing_error_estimate"] < ef.FREE_MODE_RTOL * res.trace_distance
+    assert not any("Landau-Zener" in w for w in res.warnings)
+    pred = predicted_coefficient(system, f)
+    assert pred.ok, pred.message
+    assert res.trace_distance * tf**3 == pytest.approx(pred.coefficient, rel=0.01)
 
 
 # -- Bohr-frequency sectors: sparse and symmetric problems ------------------------------
@@ -516,3 +539,48 @@ def test_closed_system_falls_back() -> None:
     assert "fallback" in res.integrator
     assert res.stats["fallback"] == "closed system"
     assert res.status == "ok"
+
+
+def test_handover_follows_the_estimated_time_of_the_general_integrator(monkeypatch) -> None:
+    # A custom initial state is outside the eigenframe integrator's assumptions, so it
+    # hands over to the general integrator when that is affordable (estimated time
+    # within HANDOVER_BUDGET_S) and otherwise fails, naming the estimate and the way out.
+    system = System.from_spec(_spec_with(TWO_QUBITS))
+    rho0 = np.eye(system.dim, dtype=complex) / system.dim
+    custom = System(system.hamiltonian, system.bath, rho0)
+    f = make_schedule("beta", k_end=1)
+    tf = 5.0
+    estimate = ef.general_time_estimate(custom.dim, ef._phase(custom, tf))
+    assert estimate > 0.0
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 2.0 * estimate)
+    handed = simulate(custom, f, tf, integrator="eigenframe")
+    ref = simulate(custom, f, tf, integrator="general")
+    assert handed.integrator == "general (fallback from eigenframe)"
+    assert handed.trace_distance == ref.trace_distance
+    monkeypatch.setattr(ef, "HANDOVER_BUDGET_S", 0.5 * estimate)
+    refused = simulate(custom, f, tf, integrator="eigenframe")
+    assert refused.status == "failed" and math.isnan(refused.trace_distance)
+    assert "custom initial state" in refused.message
+    assert 'name integrator "general"' in refused.message
+
+
+def test_general_time_estimate_grows_as_the_generator_beyond_measured_sizes() -> None:
+    # per radian: the measured table up to d = 64, then d^4 (the generator's size)
+    largest = max(ef.GENERAL_S_PER_RAD)
+    per_rad = ef.GENERAL_S_PER_RAD[largest]
+    assert ef.general_time_estimate(3, 100.0) == ef.GENERAL_S_PER_RAD[4] * 100.0
+    assert ef.general_time_estimate(2 * largest, 1.0) == pytest.approx(16.0 * per_rad)
+
+
+@pytest.mark.parametrize("tf", [40.0, 64.0])
+def test_short_linear_anneal_meets_the_accuracy_target(qubit: System, tf: float) -> None:
+    # A linear schedule ends with f' != 0, so the free modes' dressing at x = 1 has
+    # terms the adiabatic expansion leaves out; the sharper estimate fell short of the
+    # true error by up to 2.8x and a 40 ns point was accepted 2.4e-6 off.  With the
+    # safety factor the point is redone resolved where needed: 1e-6 relative to the
+    # general integrator at tight tolerance.
+    f = make_schedule("linear")
+    fast = simulate(qubit, f, tf, integrator="eigenframe")
+    ref = simulate(qubit, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
+    assert fast.integrator == "eigenframe"
+    assert abs(fast.trace_distance - ref.trace_distance) <= 1e-6 * ref.trace_distance

@@ -142,9 +142,15 @@ def integrate_eigenframe(
 #: Extra steps allowed per edge of a played waveform (``n_edges`` of a realized
 #: schedule): a filtered hold took up to about 40 steps per level change at 1e5 ns.
 STEPS_PER_EDGE = 60
-#: Above this many radians of phase (tf * largest Bohr frequency) the general
-#: integrator is too slow to serve as a fallback (minutes per point).
-FALLBACK_PHASE_LIMIT = 2.0e4
+#: Wall time of the general integrator per radian of phase (tf times the spread of the
+#: levels), by Hilbert-space dimension.  Measured 2026-12-02 on the 2-core machine of
+#: benchmarks/RESULTS.md under load (random fully connected instances, tf 10-100 ns,
+#: beta schedule): 1-4 qubits 1.6-3.4 ms/rad, 5 qubits 17 ms/rad, 6 qubits 0.79 s/rad
+#: (its generator has d^4 = 1.7e7 entries); the upper figures are kept.
+GENERAL_S_PER_RAD = {2: 3.4e-3, 4: 3.4e-3, 8: 3.4e-3, 16: 3.4e-3, 32: 1.7e-2, 64: 0.79}
+#: The general integrator takes over from the eigenframe integrator only where its
+#: estimated time (:func:`general_time_estimate`) stays below this many seconds.
+HANDOVER_BUDGET_S = 120.0
 #: Largest phase (rad) for which resolved eigenframe steps replace failed exponential ones.
 RESOLVED_PHASE_LIMIT = 1.0e4
 #: Largest accepted estimate of the neglected free-oscillation terms, relative to
@@ -152,6 +158,10 @@ RESOLVED_PHASE_LIMIT = 1.0e4
 #: against resolved runs) the estimate exceeded the true error by 2.4x or more, so this
 #: keeps the true error below 1e-6.
 FREE_MODE_RTOL = 2.0e-6
+#: Factor on the sharper free-mode estimate (the dressing's effect times its ratio).
+#: Calibrated on the driven qubit, k_end 0 and 1, tf 40-140 ns, against resolved runs
+#: at rtol 1e-12: the true error was 0.27-2.84 times the unscaled estimate.
+SHARPENED_SAFETY = 3.0
 #: A Landau-Zener bound above this fraction of the trace distance leaves no number to
 #: report: the point fails (with the bound in its message) instead of carrying a warning.
 CROSSING_TRUST = 0.1
@@ -171,6 +181,25 @@ def _unsupported(system: System) -> str | None:
     return None
 
 
+def general_time_estimate(dim: int, phase: float) -> float:
+    """Estimated wall time (s) of the general integrator over ``phase`` radians.
+
+    Beyond the measured dimensions (:data:`GENERAL_S_PER_RAD`) the cost per radian
+    grows as d^4, the size of the generator.
+    """
+    known = max(GENERAL_S_PER_RAD)
+    if dim <= known:
+        per_rad = GENERAL_S_PER_RAD[min(k for k in GENERAL_S_PER_RAD if k >= dim)]
+    else:
+        per_rad = GENERAL_S_PER_RAD[known] * (dim / known) ** 4
+    return per_rad * phase
+
+
+def _handover_affordable(system: System, phase: float) -> bool:
+    """True when the general integrator can take this point over within the budget."""
+    return system.closed or general_time_estimate(system.dim, phase) <= HANDOVER_BUDGET_S
+
+
 def _fallback(
     system: System,
     schedule: Any,
@@ -183,11 +212,14 @@ def _fallback(
     """Run the general integrator instead and say so."""
     name = "closed" if system.closed else "general"
     phase = _phase(system, tf_ns)
-    if not system.closed and phase > FALLBACK_PHASE_LIMIT:
+    if not _handover_affordable(system, phase):
+        estimate = general_time_estimate(system.dim, phase)
         return IntegrationOutcome.failure(
             system.dim,
             f"eigenframe integrator not applicable ({reason}) and tf is too long for the "
-            f"general integrator (about {phase:.3g} rad of phase to follow)",
+            f"general integrator here (about {phase:.3g} rad of phase to follow, an "
+            f"estimated {estimate / 60:.3g} min, more than {HANDOVER_BUDGET_S / 60:.3g} min; "
+            'name integrator "general" in [numerics] to run it anyway)',
             {**(stats or {}), "integrator": "eigenframe", "fallback": reason},
         )
     out = INTEGRATORS[name](system, schedule, tf_ns, rtol=rtol, atol=atol)
@@ -227,7 +259,7 @@ def _sharpen_estimate(out: IntegrationOutcome, run: Any) -> None:
     bare = run(dress=False)
     if bare.status == "ok":
         effect = _trace_distance(out.deviation - bare.deviation)
-        second = effect * out.stats["max_dressing_ratio"]
+        second = SHARPENED_SAFETY * effect * out.stats["max_dressing_ratio"]
         out.stats["free_mode_error_estimate"] = min(out.stats["free_mode_error_estimate"], second)
         out.stats["dressing_effect"] = effect
 
@@ -320,7 +352,7 @@ def eigenframe_integrator(
     if out.status != "ok":
         return _fallback(system, schedule, tf_ns, out.message, rtol, atol, stats)
     if _needs_resolving(out):
-        if phase <= FALLBACK_PHASE_LIMIT:
+        if _handover_affordable(system, phase):
             why = "free oscillations not resolved to the accuracy target"
             return _fallback(system, schedule, tf_ns, why, rtol, atol, stats)
         estimate = stats.get("free_mode_error_estimate", 0.0)
@@ -331,7 +363,7 @@ def eigenframe_integrator(
     td = _trace_distance(out.deviation)
     what = _crossing_doubt(stats, td)
     if what is not None:
-        if phase <= FALLBACK_PHASE_LIMIT:
+        if _handover_affordable(system, phase):
             return _fallback(system, schedule, tf_ns, what, rtol, atol, stats)
         if stats["crossing_error_estimate"] > CROSSING_TRUST * td:
             # a bound of the order of the result: no digit of it can be stood behind

@@ -233,6 +233,7 @@ class EigenframeStepper:
         self.x = 0.0
         self.free_err = 0.0
         self.crossing_err = 0.0
+        self.crossed: list[tuple[int, int]] = []  # label pairs passed diabatically
         self.jump_limit = JUMP_LIMIT  # longest jump to try; shrinks after a failed jump
         self.jump_pause = 0  # accepted steps to wait before trying another jump
         self.last_frame = frame0
@@ -606,6 +607,24 @@ class EigenframeStepper:
         self.stats["exponential_steps"] += 1
         return A_single
 
+    def _relax_crossing_error(self, at: _Attempt) -> None:
+        """Let the bound on what earlier diabatic passages left out relax over the step.
+
+        What a passage leaves out is a change of the state at the crossing; the
+        dissipative dynamics after it relaxes that change like any other deviation:
+        its populations at the slowest relaxation rate of the Pauli generator, its
+        coherence between the crossed levels at their damping rate.  The bound decays
+        at the smaller of the two over each later step (the same treatment as the
+        free-mode estimate).  Without it, a crossing early in a long anneal kept a bound
+        many orders above what is left of it at the end, and sent the point away.
+        """
+        fr = at.fr
+        rate = _slowest_relaxation(fr.W[0], fr.pi[0])
+        for a, b in self.crossed:
+            rate = min(rate, float(-fr.lam[0][a, b].real))
+        decay = max(rate, 0.0) * self.tf * at.h
+        self.crossing_err *= math.exp(-min(decay, 700.0))
+
     def _accept(
         self,
         at: _Attempt,
@@ -626,9 +645,12 @@ class EigenframeStepper:
         stats["min_bohr_gap_ghz"] = min(
             stats["min_bohr_gap_ghz"], float(np.min(fr.min_bohr_gap[1:])) / (2 * math.pi)
         )
+        if self.crossing_err > 0.0:
+            self._relax_crossing_error(at)
         if passage is not None:
             self.ranks = passage.order[-1]
             self.crossing_err += passage.error
+            self.crossed.extend(passage.pairs)
             stats["diabatic_crossings"] = stats.get("diabatic_crossings", 0) + len(passage.pairs)
             stats["crossing_gap_ghz"] = max(
                 stats.get("crossing_gap_ghz", 0.0), passage.gap / (2 * math.pi)
