@@ -128,7 +128,11 @@ def _ground_infidelity(system: Any, dev: NDArray[Any]) -> float:
     ground = eig.labels == 0
     v0 = eig.vectors[:, ground]
     p0_dev = float(np.real(np.trace(v0.conj().T @ dev @ v0)))
-    target_excited = 1.0 - float(np.sum(eig.target_weights(system.target_beta)[ground]))
+    # the target's own ground population (the sector target when a quantity is conserved)
+    population = getattr(system, "target_ground_population", None)
+    if population is None:
+        population = lambda: float(np.sum(eig.target_weights(system.target_beta)[ground]))  # noqa: E731
+    target_excited = 1.0 - population()
     return target_excited - p0_dev
 
 

@@ -45,7 +45,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -346,4 +346,37 @@ def predicted_coefficient(system: Any, schedule: Schedule, **kwargs: Any) -> Pre
             f"the prediction uses the dense d^2 x d^2 generator, offered up to d = {MAX_DIM} "
             f"(this system has d = {dim})",
         )
+    parts = [p for p in getattr(system, "sector_parts", tuple)() if p.matters]
+    if parts:  # a conserved quantity: each sector's L_p(1) has a unique steady state
+        return _sector_prediction(system, parts, schedule, **kwargs)
     return predict_from_generator(system.generator, system.steady_state, schedule, **kwargs)
+
+
+def _sector_prediction(
+    system: Any, parts: list[Any], schedule: Schedule, **kwargs: Any
+) -> Prediction:
+    """C_k of a system with a conserved quantity: the sectors' leading terms, weighted.
+
+    The state stays block diagonal in the sectors, each block relaxing to its own Gibbs
+    state with the sector's generator, so the leading deviation is
+    ``sum_p w_p U_p lead_p U_p^+`` with ``lead_p`` each sector's own.
+    """
+    preds = [(p, predicted_coefficient(p.system, schedule, **kwargs)) for p in parts]
+    bad = [(p, q) for p, q in preds if q.status != "ok"]
+    if bad:
+        p, q = bad[0]
+        return replace(q, message=f"{p.sector.name} sector: {q.message}")
+    lead = sum(p.weight * p.sector.embed(q.leading_deviation) for p, q in preds)
+    coeff = 0.5 * trace_norm(lead)
+    gap = min(q.liouvillian_gap for _, q in preds)
+    k, fk1 = preds[0][1].k, preds[0][1].end_derivative
+    return Prediction(
+        coeff,
+        k,
+        fk1,
+        "ok",
+        f"C_{k} = {coeff:.6g} ns^{k + 1} from the sectors' L_p(1) ({system.conserved.name} "
+        f"conserved; smallest Liouvillian gap {gap:.3g} rad/ns)",
+        leading_deviation=lead,
+        liouvillian_gap=gap,
+    )

@@ -11,12 +11,18 @@ tabulated device curves.
 
 Target.  For an open system (Davies generator with a thermal bath) the target is
 the steady state of the final generator L(1), the Gibbs state of H(1); for a
-closed system it is the ground state of H(1).
+closed system it is the ground state of H(1).  When an operator that splits the
+Hilbert space into sectors is conserved by an open system (the spin-flip parity of
+a zero-field problem with X coupling, :mod:`schedforge.symmetry`), L(1) has one
+steady state per sector and the target is the Gibbs state of each sector weighted by
+the initial state's sector populations (:attr:`System.conserved`,
+:meth:`System.sector_parts`); the integrators then run sector by sector.
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any
 
@@ -35,9 +41,17 @@ from .device import make_device_curves
 from .errors import InputError, SteadyStateError
 from .hamiltonian import AnnealingHamiltonian
 from .spec_model import INITIAL_STATES
+from .symmetry import (
+    SECTOR_COHERENCE_MAX,
+    SECTOR_WEIGHT_MIN,
+    ConservedQuantity,
+    Sector,
+    SectorHamiltonian,
+    find_conserved,
+)
 from .units import GHZ_TO_RAD_PER_NS, beta_from_mk
 
-__all__ = ["System", "curve_warnings"]
+__all__ = ["SectorPart", "System", "curve_warnings"]
 
 #: Number of s points of the pre-flight scan of the gap and Bohr frequencies, by dimension
 #: (the spectrum of L(s) costs more for larger systems).
@@ -52,6 +66,34 @@ def _preflight_points(dim: int) -> int:
         if dim <= limit:
             return n
     return PREFLIGHT_POINTS_LARGE
+
+
+@dataclass(frozen=True, eq=False)
+class SectorPart:
+    """One sector of a conserved quantity, as a system of its own.
+
+    Attributes
+    ----------
+    sector : Sector
+        The eigenspace (its basis embeds the sector's operators in the full space).
+    weight : float
+        The initial population ``tr(Pi_p rho(0))``, conserved by the anneal.
+    system : System
+        H(s), the bath and the initial state restricted to the sector (initial state
+        normalised: the full state is ``sum_p weight_p U_p rho_p U_p^+``).
+    """
+
+    sector: Sector
+    weight: float
+    system: System
+
+    @property
+    def matters(self) -> bool:
+        """The sector holds more than ``SECTOR_WEIGHT_MIN`` of the population."""
+        return self.weight > SECTOR_WEIGHT_MIN
+
+
+_UNSET: Any = object()
 
 
 # =============================================================================
@@ -111,6 +153,8 @@ class System:
         self.degeneracy_tol = float(degeneracy_tol)
         self._preflight: list[str] | None = None
         self._diagnostics: dict[str, Any] = {}
+        self._conserved: Any = _UNSET
+        self._parts: tuple[SectorPart, ...] | None = None
 
     # -- construction from a spec -----------------------------------------------
     @classmethod
@@ -164,13 +208,89 @@ class System:
         """The instantaneous target sigma(s): Gibbs state of H(s) (open) or ground state (closed).
 
         For a thermal (KMS) bath the Gibbs state is the steady state of the
-        Davies generator; uniqueness is checked by :meth:`preflight`.
+        Davies generator; uniqueness is checked by :meth:`preflight`.  With a
+        conserved quantity (:attr:`conserved`) it is the Gibbs state of each sector
+        weighted by the initial populations, ``sum_p w_p Gibbs_p(H(s))``.
         """
+        parts = self.sector_parts()
+        if parts:
+            return sum(
+                (p.weight * p.sector.embed(p.system.steady_state(s)) for p in parts if p.weight),
+                np.zeros((self.dim, self.dim), dtype=complex),
+            )
         return self.eigen(s).target_state(self.target_beta)
 
     def target_state(self) -> NDArray[Any]:
         """sigma(1), the state the anneal should end in."""
         return self.steady_state(1.0)
+
+    def target_ground_population(self) -> float:
+        """``tr(P_0 sigma(1))``: the target's population of the lowest level of H(1)."""
+        eig = self.eigen(1.0)
+        ground = eig.labels == 0
+        if not self.sector_parts():
+            return float(np.sum(eig.target_weights(self.target_beta)[ground]))
+        v0 = eig.vectors[:, ground]
+        return float(np.real(np.trace(v0.conj().T @ self.target_state() @ v0)))
+
+    # -- conserved quantities ----------------------------------------------------------
+    @property
+    def conserved(self) -> ConservedQuantity | None:
+        """A conserved quantity of the open dynamics that splits it into sectors, or None.
+
+        Tried: :data:`schedforge.symmetry.CANDIDATES` (the spin-flip parity), checked
+        numerically against the driver, the problem Hamiltonian and every coupling
+        operator.  Closed systems: None (their target is the ground state of H(1)).
+        """
+        if self._conserved is _UNSET:
+            found = None
+            ham = self.hamiltonian
+            if self.bath is not None and hasattr(ham, "driver"):
+                found = find_conserved(
+                    (ham.driver, ham.problem_matrix), self.bath.operators, ham.n_qubits
+                )
+            self._conserved = found
+        return self._conserved
+
+    def sector_parts(self) -> tuple[SectorPart, ...]:
+        """The sectors of :attr:`conserved` with their initial populations and systems.
+
+        Empty when nothing is conserved.  Sectors the initial state does not populate
+        are left out; the others' systems share this system's bath spectrum,
+        temperature and grouping tolerance.
+        """
+        if self._parts is None:
+            conserved = self.conserved
+            if conserved is None:
+                self._parts = ()
+            else:
+                rho0 = self.initial_state()
+                weights = conserved.weights(rho0)
+                self._parts = tuple(
+                    SectorPart(sec, float(w), self._sector_system(sec, float(w), rho0))
+                    for sec, w in zip(conserved.sectors, weights, strict=True)
+                    if w > 0.0
+                )
+        return self._parts
+
+    def _sector_system(self, sector: Sector, weight: float, rho0: NDArray[Any]) -> System:
+        assert self.bath is not None
+        bath = Bath(
+            self.bath.spectral_density,
+            tuple(np.real_if_close(sector.restrict(a)) for a in self.bath.operators),
+            lamb_shift=self.bath.lamb_shift,
+            beta=self.bath.beta,
+        )
+        initial: Any = self.initial
+        if initial == "custom":
+            initial = sector.restrict(rho0) / weight
+        return System(
+            SectorHamiltonian(self.hamiltonian, sector),  # type: ignore[arg-type]
+            bath,
+            initial,
+            beta=self.beta,
+            degeneracy_tol=self.degeneracy_tol,
+        )
 
     def initial_state(self) -> NDArray[Any]:
         """rho(0): Gibbs state of H(0) at ``beta``, or its ground state."""
@@ -238,6 +358,8 @@ class System:
                     f"s = {grid[k]:.3f}: expect slow adiabatic convergence"
                 )
             return warnings
+        if self.sector_parts():
+            return self._sector_preflight()
         final = self.spectrum(1.0)
         if final.zero_count > 1:
             raise SteadyStateError(
@@ -248,6 +370,12 @@ class System:
                 "undefined: "
                 + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
             )
+        return self._scan_open(final)
+
+    def _scan_open(self, final: GeneratorSpectrum) -> list[str]:
+        """The gap and secular scans of an open system whose L(1) is ``final``."""
+        warnings: list[str] = []
+        grid = np.linspace(0.0, 1.0, _preflight_points(self.dim))
         gaps = np.full(grid.size, np.nan)
         skipped = []
         for i, s in enumerate(grid):
@@ -290,6 +418,69 @@ class System:
                 "frequency at every step (tens of ms per step): practical for small systems "
                 "and short anneals only"
             )
+        return warnings
+
+    def _sector_preflight(self) -> list[str]:
+        """Pre-flight of an open system with a conserved quantity, sector by sector.
+
+        The initial state must have no coherence between sectors (the sectors are
+        integrated apart) and each populated sector's own generator L_p(1) a unique
+        steady state; the gap and secular scans run per sector (distinct sectors never
+        couple), their diagnostics merged (the smallest gap), their warnings named.
+        """
+        conserved = self.conserved
+        assert conserved is not None and self.bath is not None
+        rho0 = self.initial_state()
+        coherence = conserved.coherence(rho0)
+        if coherence > SECTOR_COHERENCE_MAX:
+            raise SteadyStateError(
+                "initial.state",
+                f"has coherences between the sectors of the conserved {conserved.name} "
+                f"(norm {coherence:.3g}); schedforge integrates the sectors apart and needs an "
+                "initial state that commutes with it (the Gibbs or ground state of H(0) does)",
+            )
+        parts = [p for p in self.sector_parts() if p.matters]
+        full = self.spectrum(1.0).zero_count
+        finals = []
+        for part in parts:
+            final = part.system.spectrum(1.0)
+            if final.zero_count > 1:
+                raise SteadyStateError(
+                    "bath.coupling",
+                    f"conserves the {conserved.name}, and even within its {part.sector.name} "
+                    f"sector the final generator has {final.zero_count} independent steady "
+                    "states, so the state the anneal relaxes to is undetermined: "
+                    + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
+                )
+            finals.append(final)
+        warnings = []
+        diag: dict[str, Any] = {}
+        for part, final in zip(parts, finals, strict=True):
+            for w in part.system._scan_open(final):
+                warnings.append(f"{part.sector.name} sector: {w}")
+            sub = part.system._diagnostics
+            if not diag or sub["liouvillian_gap_min_ghz"] < diag["liouvillian_gap_min_ghz"]:
+                keep = ("liouvillian_gap_min_ghz", "s_at_liouvillian_gap_min")
+                diag.update({k: sub[k] for k in keep})
+            diag["liouvillian_gap_final_ghz"] = min(
+                diag.get("liouvillian_gap_final_ghz", math.inf), sub["liouvillian_gap_final_ghz"]
+            )
+            for interval in sub.get("secular_doubtful_intervals", []):
+                if interval not in diag.setdefault("secular_doubtful_intervals", []):
+                    diag["secular_doubtful_intervals"].append(interval)
+        populated = ", ".join(f"{p.sector.name} {p.weight:.6g}" for p in self.sector_parts())
+        diag["conserved"] = conserved.name
+        diag["sector_weights"] = {p.sector.name: p.weight for p in self.sector_parts()}
+        diag["final_steady_states"] = full
+        self._diagnostics = diag
+        warnings.insert(
+            0,
+            f"conserved: {conserved.name} commutes with H(s) and every coupling operator, so "
+            f"the population of each of its sectors is fixed by the initial state "
+            f"({populated}); target = Gibbs state per sector weighted by the initial "
+            f"populations (the full L(1) has {full} independent steady states, coherences "
+            "between sectors included; each populated sector's own generator has one)",
+        )
         return warnings
 
     def _bohr_near_crossing(self, grid: NDArray[np.float64]) -> str | None:

@@ -54,6 +54,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
         "dynamics core",
         (
             "davies",
+            "symmetry",
             "system",
             "integrators.base",
             "integrators.collocation",

@@ -113,6 +113,14 @@ def format_result(result: SimulationResult) -> str:
     else:
         lines.append(f"failure         {result.message}")
         lines.append("no error figures: the integration did not finish")
+    conserved = result.stats.get("conserved")
+    if conserved:
+        weights = result.stats.get("sector_weights") or {}
+        shares = ", ".join(f"{name} {w:.6g}" for name, w in weights.items())
+        lines.append(
+            f"conserved       {conserved}: target = Gibbs state per sector weighted by the "
+            f"initial populations ({shares})"
+        )
     gap = result.stats.get("liouvillian_gap_final_ghz")
     if gap is not None:
         lines.append(

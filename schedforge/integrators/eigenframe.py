@@ -112,6 +112,7 @@ from numpy.typing import NDArray
 from ..metrics import trace_distance as _trace_distance
 from ..system import System
 from .base import INTEGRATORS, IntegrationOutcome, register_integrator
+from .conserved import integrate_by_sector
 from .frame import EigenframeModel
 from .stepper import DRESSING_MAX_DIM, MAX_STEPS, EigenframeStepper
 
@@ -335,6 +336,11 @@ def eigenframe_integrator(
         ``stats["integrator"]`` names what actually ran; ``stats["fallback"]``
         gives the reason when the general integrator ran instead.
     """
+    by_sector = integrate_by_sector(
+        eigenframe_integrator, system, schedule, tf_ns, rtol=rtol, atol=atol
+    )
+    if by_sector is not None:  # a conserved quantity: each sector from its own Gibbs state
+        return by_sector
     reason = _unsupported(system)
     if reason is not None:
         return _fallback(system, schedule, tf_ns, reason, rtol, atol)

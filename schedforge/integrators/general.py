@@ -49,6 +49,7 @@ from ..progress import report_anneal_progress
 from ..schedules import Schedule
 from ..system import System
 from .base import IntegrationOutcome, register_integrator
+from .conserved import integrate_by_sector
 
 __all__ = ["integrate_closed", "integrate_general", "segment_boundaries"]
 
@@ -139,6 +140,11 @@ def integrate_general(
     """
     if system.closed and system.initial == "ground":
         return integrate_closed(system, schedule, tf_ns, rtol=rtol, atol=atol)
+    by_sector = integrate_by_sector(
+        integrate_general, system, schedule, tf_ns, rtol=rtol, atol=atol
+    )
+    if by_sector is not None:  # a conserved quantity: each sector from its own Gibbs state
+        return by_sector
     d = system.dim
     ham = system.hamiltonian
     bath = system.bath
