@@ -390,11 +390,5 @@ def load_noise_study(folder: str | Path) -> tuple[Spec, list[dict[str, Any]]] | 
         if noise_physics_hash(spec) != store.physics_hash:
             return None
         keys = [point_key(store.physics_hash, p) for p in ensemble_points(spec)]
-        rows = store.rows(keys)
-    if len(rows) < len(keys):
-        raise InputError(
-            "DIR",
-            f"holds an unfinished noise ensemble ({len(rows)} of {len(keys)} points stored in "
-            f"{path}): rerun the noise-sweep command to compute the rest",
-        )
+        rows = store.finished_rows(keys, "noise ensemble", "noise-sweep")
     return spec, rows

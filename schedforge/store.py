@@ -499,6 +499,32 @@ class PointStore:
             cur = self._conn.executemany("DELETE FROM points WHERE key = ?", wanted)
         return int(cur.rowcount)
 
+    def finished_rows(self, keys: Iterable[str], study: str, command: str) -> list[dict[str, Any]]:
+        """The stored rows of every one of ``keys``, or bad input naming what is missing.
+
+        Parameters
+        ----------
+        keys : iterable of str
+            The point keys of a study's grid.
+        study, command : str
+            What the folder holds ("sweep", "noise ensemble") and the command that
+            computes the rest, for the message.
+
+        Raises
+        ------
+        InputError
+            Naming ``DIR`` when some points of the grid are not stored.
+        """
+        keys = list(keys)
+        rows = self.rows(keys)
+        if len(rows) < len(keys):
+            raise InputError(
+                "DIR",
+                f"holds an unfinished {study} ({len(rows)} of {len(keys)} points stored in "
+                f"{self.path}): rerun the {command} command to compute the rest",
+            )
+        return rows
+
     def rows(self, keys: Iterable[str] | None = None) -> list[dict[str, Any]]:
         """Stored rows (all, or those of ``keys``), sorted by family, variant, k_start,
         k_end, tf_ns; NULL floats come back as NaN; ``warnings`` is the point's own

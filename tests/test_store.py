@@ -205,3 +205,22 @@ def test_store_without_a_metric_column_gains_it_and_resumes(tmp_path):
     assert math.isnan(rows["k1"]["excess_energy_ghz"])
     assert rows["k2"]["excess_energy_ghz"] == _row(100.0)["excess_energy_ghz"]
     assert store_mod.METRIC_COLUMNS == tuple(store_mod.metric_names())
+
+
+def test_finished_rows_names_what_is_missing(tmp_path):
+    # A report of a grid whose points are not all stored is refused (bad input naming
+    # DIR, with the count and the command that computes the rest), not drawn from part.
+    with PointStore(tmp_path / STORE_NAME, HASH_A) as store:
+        run = store.begin_run(executor="serial", n_points=3, n_pending=3)
+        store.commit("key0", _row(10.0), run)
+        store.commit("key1", _row(20.0), run)
+        assert [r["tf_ns"] for r in store.finished_rows(["key1", "key0"], "sweep", "sweep")] == [
+            10.0,
+            20.0,
+        ]
+        with pytest.raises(InputError) as info:
+            store.finished_rows(["key0", "key1", "key2"], "noise ensemble", "noise-sweep")
+    assert info.value.field == "DIR"
+    message = str(info.value)
+    assert "unfinished noise ensemble (2 of 3 points stored in" in message
+    assert "rerun the noise-sweep command" in message

@@ -49,13 +49,7 @@ def study_from_store(folder: Path) -> tuple[Any, list[dict[str, Any]]]:
     spec = spec_from_store(folder)
     with PointStore(folder / STORE_NAME) as store:
         keys = [point_key(store.physics_hash, p) for p in sweep_points(spec)]
-        rows = store.rows(keys)
-    if len(rows) < len(keys):
-        raise InputError(
-            "DIR",
-            f"holds an unfinished sweep ({len(rows)} of {len(keys)} points stored in "
-            f"{folder / STORE_NAME}): rerun the sweep command to compute the rest",
-        )
+        rows = store.finished_rows(keys, "sweep", "sweep")
     return spec, rows
 
 
