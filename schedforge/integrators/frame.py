@@ -121,9 +121,9 @@ def transported(Vc: NDArray[np.float64], Q: NDArray[np.float64]) -> NDArray[np.f
     arbitrary; this choice (Loewdin's symmetric orthonormalisation of the projected
     reference) turns as little as possible from the reference, so the frame is
     continuous, and its rotation inside the eigenspace is known exactly
-    (:func:`transport_rotation`).
+    (:func:`transport_rotation`).  ``Vc`` may be a stack (n, d, k) of such bases.
     """
-    u, _, vt = np.linalg.svd(Vc.T @ Q)
+    u, _, vt = np.linalg.svd(np.swapaxes(Vc, -1, -2) @ Q)
     return Vc @ (u @ vt)
 
 
@@ -141,29 +141,45 @@ def transport_rotation(
     ``N = Q^T P P' Q = sum_(a in c, e not in c) (Q^T v_a) H'_ae (v_e^T Q) / (E_a - E_e)``
     (first-order perturbation of the spectral projector, Kato 1966) and
     ``M' = N + N^T``; the derivative of ``M^(-1/2)`` by the Daleckii-Krein formula.
-    ``Hp`` is dH/ds in the frame ``V`` (columns already transported).
+    ``Hp`` is dH/ds in the frame ``V`` (columns already transported).  ``E``, ``V``
+    and ``Hp`` may be stacks over n points with the same ``members``: (n, k, k) out.
     """
-    d = E.size
+    d = E.shape[-1]
     rest = np.setdiff1d(np.arange(d), members)
-    B = V[:, members].T @ Q  # (k, k)
+    B = np.swapaxes(V[..., members], -1, -2) @ Q  # (..., k, k)
+    Bt = np.swapaxes(B, -1, -2)
     if rest.size:
-        denom = E[members][:, None] - E[rest][None, :]
-        N = B.T @ (Hp[np.ix_(members, rest)] / denom) @ (V[:, rest].T @ Q)
+        denom = E[..., members, None] - E[..., None, rest]
+        coupling = Hp[..., members, :][..., rest] / denom
+        N = Bt @ coupling @ (np.swapaxes(V[..., rest], -1, -2) @ Q)
     else:
         N = np.zeros_like(B)
-    mu, U = np.linalg.eigh(B.T @ B)
+    mu, U = np.linalg.eigh(Bt @ B)
     mu = np.maximum(mu, 1e-300)
     r = mu**-0.5
-    diff = mu[:, None] - mu[None, :]
-    same = np.abs(diff) <= 1e-14 * mu.max()
+    diff = mu[..., :, None] - mu[..., None, :]
+    same = np.abs(diff) <= 1e-14 * mu.max(axis=-1)[..., None, None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        dd = np.where(same, -0.5 * mu[:, None] ** -1.5, (r[:, None] - r[None, :]) / diff)
-    Mp = N + N.T
-    inv_sqrt = (U * r) @ U.T
-    sqrt = (U * mu**0.5) @ U.T
-    d_inv_sqrt = U @ (dd * (U.T @ Mp @ U)) @ U.T
+        dd = np.where(
+            same, -0.5 * mu[..., :, None] ** -1.5, (r[..., :, None] - r[..., None, :]) / diff
+        )
+    Ut = np.swapaxes(U, -1, -2)
+    Mp = N + np.swapaxes(N, -1, -2)
+    inv_sqrt = (U * r[..., None, :]) @ Ut
+    sqrt = (U * (mu**0.5)[..., None, :]) @ Ut
+    d_inv_sqrt = U @ (dd * (Ut @ Mp @ U)) @ Ut
     K = inv_sqrt @ N @ inv_sqrt + sqrt @ d_inv_sqrt
-    return 0.5 * (K - K.T)
+    return 0.5 * (K - np.swapaxes(K, -1, -2))
+
+
+def _same_members(
+    clusters: list[tuple[int, NDArray[np.intp]]],
+) -> list[tuple[NDArray[np.intp], NDArray[np.intp]]]:
+    """Degenerate clusters grouped by their labels: (labels, points where they occur)."""
+    groups: dict[bytes, tuple[NDArray[np.intp], list[int]]] = {}
+    for n, members in clusters:
+        groups.setdefault(members.tobytes(), (members, []))[1].append(n)
+    return [(members, np.array(points)) for members, points in groups.values()]
 
 
 def diabatic_states(
@@ -311,8 +327,12 @@ class EigenframeModel:
         if diabatic is not None:
             E, V = diabatic_states(H, dH, E, V, diabatic)
         clusters = degenerate_clusters(E, tol) if reference is not None else []
-        for n, members in clusters:  # parallel transport inside degenerate levels
-            V[n][:, members] = transported(V[n][:, members], reference[:, members])
+        # parallel transport inside degenerate levels, batched over the points that
+        # share a cluster (a step's nodes usually do)
+        clusters = _same_members(clusters)
+        for members, ns in clusters:
+            cols = np.ix_(ns, np.arange(d), members)
+            V[cols] = transported(V[cols], reference[:, members])
         if reference is None:
             idx = np.argmax(np.abs(V), axis=1)  # (n, d)
             sgn = np.sign(np.take_along_axis(V, idx[:, None, :], axis=1))[:, 0, :]
@@ -329,9 +349,9 @@ class EigenframeModel:
         if d > 1:
             split = off[None] & (np.abs(dE) > tol)
             K[split] = Hp[split] / dE[split]
-        for n, members in clusters:
-            K[n][np.ix_(members, members)] = transport_rotation(
-                E[n], V[n], Hp[n], members, reference[:, members]
+        for members, ns in clusters:
+            K[np.ix_(ns, members, members)] = transport_rotation(
+                E[ns], V[ns], Hp[ns], members, reference[:, members]
             )
         # Davies rates: W[a, b] = sum_i gamma(E_b - E_a) |A_ab|^2, rate b -> a
         g = np.asarray(self.gamma(dE.ravel())).reshape(dE.shape)

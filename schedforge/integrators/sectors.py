@@ -44,6 +44,7 @@ __all__ = [
     "resonant_coupling",
     "rotation_superoperator",
     "sector_coupling",
+    "sector_coupling_batch",
     "sector_couplings",
     "sector_leak",
 ]
@@ -81,38 +82,105 @@ def sector_coupling(
         out.  None when no two elements share a sector (distinct levels and Bohr
         frequencies), the case the eigenframe handles without it.
     """
-    d = E.size
-    levels = group_levels(E, tol)
-    omega, gid, _ = bohr_groups(levels, tol)
-    sizes = np.bincount(gid.ravel())
-    zero_group = gid[0, 0]
-    others = np.delete(sizes, zero_group)
-    if sizes[zero_group] == d and (others.size == 0 or others.max() == 1):
-        return None
-    g = np.asarray(gamma(omega), dtype=float)
-    sqrt_g = np.sqrt(np.maximum(g, 0.0)).ravel()
-    ops = np.stack([V.conj().T @ op @ V for op in operators]).reshape(len(operators), d * d)
-    p, q = pair_pairs(gid)
-    weight = sqrt_g[p] * sqrt_g[q] * np.einsum("ij,ij->j", ops[:, p], ops[:, q].conj())
-    ap, bp, aq, bq = p // d, p % d, q // d, q % d
-    # jump terms: rho_(bp, bq) -> rho_(ap, aq)
-    rows = [ap * d + aq]
-    cols = [bp * d + bq]
-    vals = [weight]
-    # anticommutator -(K rho + rho K) / 2 with K = sum L^+ L (within degenerate levels)
-    same = ap == aq
-    kmat = np.zeros((d, d), dtype=complex)
-    np.add.at(kmat, (bp[same], bq[same]), weight[same].conj())
-    ka, kb = np.nonzero(kmat)
-    idx = np.arange(d)
-    # (K rho)_(a, c) = sum_b K_ab rho_bc ; (rho K)_(a, c) = sum_b rho_ab K_bc
-    rows += [np.add.outer(ka * d, idx).ravel(), np.add.outer(idx * d, kb).ravel()]
-    cols += [np.add.outer(kb * d, idx).ravel(), np.add.outer(idx * d, ka).ravel()]
-    kv = -0.5 * kmat[ka, kb]
-    vals += [np.repeat(kv, d), np.tile(kv, d)]
-    r = np.concatenate(rows)
-    c = np.concatenate(cols)
-    v = np.concatenate(vals)
+    return sector_coupling_batch(E[None], V[None], operators, gamma, tol)[0]
+
+
+def sector_coupling_batch(
+    E: NDArray[np.float64],
+    V: NDArray[Any],
+    operators: list[NDArray[Any]],
+    gamma: Any,
+    tol: float,
+) -> list[sparse.csr_matrix | None]:
+    """:func:`sector_coupling` at n points at once (``E`` (n, d), ``V`` (n, d, d)).
+
+    Points with the same grouping of Bohr frequencies (a step's nodes, as a rule)
+    share the index work and the matrix structure; only the rates differ.
+    """
+    n, d = E.shape
+    levels = np.stack([group_levels(E[j], tol) for j in range(n)])
+    found = [bohr_groups(levels[j], tol) for j in range(n)]
+    out: list[sparse.csr_matrix | None] = [None] * n
+    shared: dict[bytes, list[int]] = {}
+    for j, (_, gid, _) in enumerate(found):
+        sizes = np.bincount(gid.ravel())
+        zero_group = gid[0, 0]
+        others = np.delete(sizes, zero_group)
+        if sizes[zero_group] == d and (others.size == 0 or others.max() == 1):
+            continue  # distinct levels and Bohr frequencies here
+        shared.setdefault(gid.tobytes(), []).append(j)
+    for points in shared.values():
+        at = np.array(points)
+        omega = np.stack([found[j][0] for j in points])
+        structure = _SectorStructure(found[points[0]][1])
+        g = np.asarray(gamma(omega.ravel()), dtype=float).reshape(at.size, d * d)
+        sqrt_g = np.sqrt(np.maximum(g, 0.0))
+        Vn = V[at]
+        ops = np.stack(
+            [np.swapaxes(Vn, 1, 2).conj() @ op @ Vn for op in operators], axis=1
+        ).reshape(at.size, len(operators), d * d)
+        for j, S in zip(points, structure.matrices(sqrt_g, ops), strict=True):
+            out[j] = S
+    return out
+
+
+class _SectorStructure:
+    """Index work of the sector couplings for one grouping of Bohr frequencies."""
+
+    def __init__(self, gid: NDArray[np.int64]) -> None:
+        d = gid.shape[0]
+        self.d = d
+        p, q = pair_pairs(gid)
+        self.p, self.q = p, q
+        ap, bp, aq, bq = p // d, p % d, q // d, q % d
+        # jump terms: rho_(bp, bq) -> rho_(ap, aq)
+        self.jump_rows, self.jump_cols = ap * d + aq, bp * d + bq
+        # anticommutator -(K rho + rho K) / 2 with K = sum L^+ L (within degenerate
+        # levels): K_(bp, bq) collects the weights of the pairs with ap == aq
+        self.same = ap == aq
+        self.k_index = bp[self.same] * d + bq[self.same]
+
+    def matrices(
+        self, sqrt_g: NDArray[np.float64], ops: NDArray[np.complex128]
+    ) -> list[sparse.csr_matrix | None]:
+        """The couplings at each point from its sqrt(gamma) (n, d^2) and operators."""
+        d, p, q = self.d, self.p, self.q
+        weight = (
+            sqrt_g[:, p]
+            * sqrt_g[:, q]
+            * np.einsum("nij,nij->nj", ops[:, :, p], ops[:, :, q].conj())
+        )
+        out = []
+        idx = np.arange(d)
+        for w in weight:
+            kflat = np.bincount(
+                self.k_index, weights=w[self.same].real, minlength=d * d
+            ) - 1j * np.bincount(self.k_index, weights=w[self.same].imag, minlength=d * d)
+            kmat = kflat.reshape(d, d)
+            ka, kb = np.nonzero(kmat)
+            # (K rho)_(a, c) = sum_b K_ab rho_bc ; (rho K)_(a, c) = sum_b rho_ab K_bc
+            rows = [
+                self.jump_rows,
+                np.add.outer(ka * d, idx).ravel(),
+                np.add.outer(idx * d, kb).ravel(),
+            ]
+            cols = [
+                self.jump_cols,
+                np.add.outer(kb * d, idx).ravel(),
+                np.add.outer(idx * d, ka).ravel(),
+            ]
+            kv = -0.5 * kmat[ka, kb]
+            vals = [w, np.repeat(kv, d), np.tile(kv, d)]
+            out.append(
+                _assemble(np.concatenate(rows), np.concatenate(cols), np.concatenate(vals), d)
+            )
+        return out
+
+
+def _assemble(
+    r: NDArray[np.intp], c: NDArray[np.intp], v: NDArray[np.complex128], d: int
+) -> sparse.csr_matrix | None:
+    """The off-diagonal, non-population entries as a CSR matrix (duplicates summed)."""
     population = (r // d == r % d) & (c // d == c % d)
     keep = (r != c) & ~population & (v != 0)
     if not keep.any():
@@ -205,10 +273,7 @@ def sector_couplings(model: EigenframeModel, fr: FrameData, tol: float) -> list[
     tol = max(tol, frame_tol(fr.E))
     if not np.any((fr.min_bohr_gap <= tol) | (fr.min_level_gap <= tol)):
         return None
-    out = [
-        sector_coupling(fr.E[n], fr.V[n], model.operators, model.gamma, tol)
-        for n in range(fr.E.shape[0])
-    ]
+    out = sector_coupling_batch(fr.E, fr.V, model.operators, model.gamma, tol)
     return None if all(S is None for S in out) else out
 
 
