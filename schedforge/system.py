@@ -336,8 +336,10 @@ class System:
         :class:`SteadyStateError`); the Liouvillian gap along s is scanned, and
         near-crossings of Bohr frequencies (closer than 10 times the largest
         relaxation rate, where the secular approximation is doubtful) are
-        reported.  Closed system: the ground state of H(1) must be non-degenerate.
-        The results are cached; :attr:`diagnostics` holds the numbers.
+        reported.  Closed system: the ground state of H(1) must be non-degenerate
+        (within each populated sector when a quantity is conserved; otherwise the
+        refusal names the degenerate classical configurations).  The results are
+        cached; :attr:`diagnostics` holds the numbers.
         """
         if self._preflight is None:
             self._preflight = self._run_preflight()

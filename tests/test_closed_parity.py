@@ -253,3 +253,11 @@ def test_cli_simulate_closed_zero_field_chain(run_cli, write_spec) -> None:
     # simulate_spec (under the CLI) and simulate on the system built in Python agree
     direct = simulate(_system(_chain(3)), make_schedule("beta", k_start=0, k_end=1), 10.0)
     assert data["trace_distance"] == pytest.approx(direct.trace_distance, rel=1e-12)
+
+
+def test_cli_refuses_an_unexplained_degeneracy(run_cli, write_spec) -> None:
+    path = write_spec(SPEC.replace("h = [0.0, 0.0, 0.0]", "h = [0.5, 0.0, -0.5]"))
+    code, out, err = run_cli("simulate", path)
+    assert code == 2 and out == ""
+    assert err.startswith("error: `problem` gives a closed system whose final ground state")
+    assert "no conserved quantity explains it" in err and "Traceback" not in err
