@@ -7,7 +7,9 @@ The system lives in :mod:`schedforge.system`, the integrators and their registry
 
 Target and error.  For an open system (Davies generator with a thermal bath)
 the target is the steady state of the final generator L(1), the Gibbs state of
-H(1); for a closed system it is the ground state of H(1).  The result reports
+H(1); for a closed system it is the ground state of H(1) (with a conserved quantity:
+per sector, weighted by the initial populations, :mod:`schedforge.system`).  The
+result reports
 
 * ``trace_distance``: ``||rho(tf) - sigma(1)||_1 / 2``;
 * ``ground_infidelity``: ``1 - tr(P_0 rho(tf))`` with P_0 the projector on the

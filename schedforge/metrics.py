@@ -8,7 +8,8 @@ generator for an open system, the ground state of H(1) for a closed one).  Each 
 * ``trace_distance``: ``||rho(tf) - sigma(1)||_1 / 2``;
 * ``ground_infidelity``: ``1 - tr(P_0 rho(tf))`` with P_0 the projector on the
   lowest level of H(1) (for an open system this tends to the thermal excited
-  population, not to zero);
+  population, not to zero; for a closed system with a conserved quantity, on the
+  lowest level of H(1) within each sector the initial state populates);
 * ``excess_energy_ghz``: ``tr(H(1) (rho(tf) - sigma(1)))`` as E/h in GHz, the
   energy in excess of the target state.
 
@@ -126,9 +127,12 @@ def _trace_distance(system: Any, dev: NDArray[Any]) -> float:
 def _ground_infidelity(system: Any, dev: NDArray[Any]) -> float:
     eig = system.eigen(1.0)
     ground = eig.labels == 0
-    v0 = eig.vectors[:, ground]
+    # the ground space measured (a closed system with a conserved quantity: the ground
+    # state of each populated sector, the target's support) and the target's own
+    # population of it
+    space = getattr(system, "ground_space", None)
+    v0 = eig.vectors[:, ground] if space is None else space()
     p0_dev = float(np.real(np.trace(v0.conj().T @ dev @ v0)))
-    # the target's own ground population (the sector target when a quantity is conserved)
     population = getattr(system, "target_ground_population", None)
     if population is None:
         population = lambda: float(np.sum(eig.target_weights(system.target_beta)[ground]))  # noqa: E731

@@ -16,6 +16,11 @@ a KMS-symmetric Davies generator to a sector is again one, whose steady state is
 sector's Gibbs state; Davies, Commun. Math. Phys. 39, 91 (1974); for Lindblad
 generators with a strong symmetry: Buca and Prosen, New J. Phys. 14, 073007 (2012)).
 
+A closed system (no bath) conserves P when P commutes with H(s) alone; its target is
+then the ground state of H(1) within each sector, weighted the same way (a unitary
+evolution keeps each sector's population, and within a sector the adiabatic theorem
+leads to the sector's own ground state).
+
 The candidate checked here is the global spin-flip parity ``X^n = prod_i X_i``: it
 commutes with the transverse-field driver always, with the Ising problem exactly when
 every field h_i vanishes, and with X couplings (Y and Z couplings anticommute with it).

@@ -12,11 +12,15 @@ tabulated device curves.
 Target.  For an open system (Davies generator with a thermal bath) the target is
 the steady state of the final generator L(1), the Gibbs state of H(1); for a
 closed system it is the ground state of H(1).  When an operator that splits the
-Hilbert space into sectors is conserved by an open system (the spin-flip parity of
-a zero-field problem with X coupling, :mod:`schedforge.symmetry`), L(1) has one
-steady state per sector and the target is the Gibbs state of each sector weighted by
-the initial state's sector populations (:attr:`System.conserved`,
-:meth:`System.sector_parts`); the integrators then run sector by sector.
+Hilbert space into sectors is conserved (the spin-flip parity of a zero-field problem,
+with X coupling for an open system, :mod:`schedforge.symmetry`), the population of
+each sector is fixed by the initial state.  Open: L(1) has one steady state per sector
+and the target is the Gibbs state of each sector weighted by the initial state's
+sector populations.  Closed: the target is the ground state of H(1) within each
+sector, weighted the same way (well defined even where the ground level of H(1) is
+degenerate across sectors, as it always is for a zero-field Ising problem with
+A(1) = 0).  See :attr:`System.conserved` and :meth:`System.sector_parts`; the
+integrators then run sector by sector.
 """
 
 from __future__ import annotations
@@ -210,7 +214,8 @@ class System:
         For a thermal (KMS) bath the Gibbs state is the steady state of the
         Davies generator; uniqueness is checked by :meth:`preflight`.  With a
         conserved quantity (:attr:`conserved`) it is the Gibbs state of each sector
-        weighted by the initial populations, ``sum_p w_p Gibbs_p(H(s))``.
+        weighted by the initial populations, ``sum_p w_p Gibbs_p(H(s))`` (closed: the
+        ground state of each sector, ``sum_p w_p G_p(s)``).
         """
         parts = self.sector_parts()
         if parts:
@@ -224,31 +229,46 @@ class System:
         """sigma(1), the state the anneal should end in."""
         return self.steady_state(1.0)
 
-    def target_ground_population(self) -> float:
-        """``tr(P_0 sigma(1))``: the target's population of the lowest level of H(1)."""
+    def ground_space(self) -> NDArray[Any]:
+        """Orthonormal columns spanning P_0, the ground space the ground infidelity measures.
+
+        The lowest level of H(1); for a closed system with a conserved quantity, the
+        lowest level of H(1) within each sector the initial state populates (the
+        target's support: a parity-even start can only reach the even ground state).
+        With A(1) = 0 and zero fields both are the same space restricted to the
+        populated sectors.
+        """
+        parts = self.sector_parts() if self.closed else ()
+        if parts:
+            return np.hstack(
+                [p.sector.basis @ p.system.ground_space() for p in parts if p.weight > 0.0]
+            )
         eig = self.eigen(1.0)
-        ground = eig.labels == 0
+        return eig.vectors[:, eig.labels == 0]
+
+    def target_ground_population(self) -> float:
+        """``tr(P_0 sigma(1))``: the target's population of :meth:`ground_space`."""
+        eig = self.eigen(1.0)
         if not self.sector_parts():
-            return float(np.sum(eig.target_weights(self.target_beta)[ground]))
-        v0 = eig.vectors[:, ground]
+            return float(np.sum(eig.target_weights(self.target_beta)[eig.labels == 0]))
+        v0 = self.ground_space()
         return float(np.real(np.trace(v0.conj().T @ self.target_state() @ v0)))
 
     # -- conserved quantities ----------------------------------------------------------
     @property
     def conserved(self) -> ConservedQuantity | None:
-        """A conserved quantity of the open dynamics that splits it into sectors, or None.
+        """A conserved quantity of the dynamics that splits it into sectors, or None.
 
         Tried: :data:`schedforge.symmetry.CANDIDATES` (the spin-flip parity), checked
-        numerically against the driver, the problem Hamiltonian and every coupling
-        operator.  Closed systems: None (their target is the ground state of H(1)).
+        numerically against the driver, the problem Hamiltonian and, for an open
+        system, every coupling operator (a closed system has none).
         """
         if self._conserved is _UNSET:
             found = None
             ham = self.hamiltonian
-            if self.bath is not None and hasattr(ham, "driver"):
-                found = find_conserved(
-                    (ham.driver, ham.problem_matrix), self.bath.operators, ham.n_qubits
-                )
+            if hasattr(ham, "driver"):
+                operators = () if self.bath is None else self.bath.operators
+                found = find_conserved((ham.driver, ham.problem_matrix), operators, ham.n_qubits)
             self._conserved = found
         return self._conserved
 
@@ -256,8 +276,8 @@ class System:
         """The sectors of :attr:`conserved` with their initial populations and systems.
 
         Empty when nothing is conserved.  Sectors the initial state does not populate
-        are left out; the others' systems share this system's bath spectrum,
-        temperature and grouping tolerance.
+        are left out; the others' systems share this system's bath spectrum (none for
+        a closed system), temperature and grouping tolerance.
         """
         if self._parts is None:
             conserved = self.conserved
@@ -274,13 +294,14 @@ class System:
         return self._parts
 
     def _sector_system(self, sector: Sector, weight: float, rho0: NDArray[Any]) -> System:
-        assert self.bath is not None
-        bath = Bath(
-            self.bath.spectral_density,
-            tuple(np.real_if_close(sector.restrict(a)) for a in self.bath.operators),
-            lamb_shift=self.bath.lamb_shift,
-            beta=self.bath.beta,
-        )
+        bath = None
+        if self.bath is not None:
+            bath = Bath(
+                self.bath.spectral_density,
+                tuple(np.real_if_close(sector.restrict(a)) for a in self.bath.operators),
+                lamb_shift=self.bath.lamb_shift,
+                beta=self.bath.beta,
+            )
         initial: Any = self.initial
         if initial == "custom":
             initial = sector.restrict(rho0) / weight
@@ -315,8 +336,10 @@ class System:
         :class:`SteadyStateError`); the Liouvillian gap along s is scanned, and
         near-crossings of Bohr frequencies (closer than 10 times the largest
         relaxation rate, where the secular approximation is doubtful) are
-        reported.  Closed system: the ground state of H(1) must be non-degenerate.
-        The results are cached; :attr:`diagnostics` holds the numbers.
+        reported.  Closed system: the ground state of H(1) must be non-degenerate
+        (within each populated sector when a quantity is conserved; otherwise the
+        refusal names the degenerate classical configurations).  The results are
+        cached; :attr:`diagnostics` holds the numbers.
         """
         if self._preflight is None:
             self._preflight = self._run_preflight()
@@ -329,35 +352,13 @@ class System:
         return dict(self._diagnostics)
 
     def _run_preflight(self) -> list[str]:
-        warnings: list[str] = []
-        grid = np.linspace(0.0, 1.0, _preflight_points(self.dim))
-        eig1 = self.eigen(1.0)
         if self.closed:
-            mult = eig1.ground_multiplicity
+            if self.sector_parts():
+                return self._sector_preflight()
+            mult = self.eigen(1.0).ground_multiplicity
             if mult > 1:
-                raise SteadyStateError(
-                    "problem",
-                    f"gives a closed system whose final ground state is {mult}-fold degenerate, "
-                    "so the target state is not unique and the error is undefined; add a small "
-                    "field h_i that breaks the degeneracy",
-                )
-            gaps = []
-            for s in grid:
-                e = self.eigen(float(s))
-                gaps.append(
-                    np.inf if e.n_clusters == 1 else float(np.unique(e.levels)[1] - e.levels[0])
-                )
-            k = int(np.argmin(gaps))
-            self._diagnostics = {
-                "min_spectral_gap_ghz": gaps[k] / GHZ_TO_RAD_PER_NS,
-                "s_at_min_spectral_gap": float(grid[k]),
-            }
-            if eig1.ground_multiplicity == 1 and gaps[k] < 1e-3 * GHZ_TO_RAD_PER_NS:
-                warnings.append(
-                    f"the spectral gap of H(s) falls to {gaps[k] / GHZ_TO_RAD_PER_NS:.3g} GHz near "
-                    f"s = {grid[k]:.3f}: expect slow adiabatic convergence"
-                )
-            return warnings
+                raise SteadyStateError("problem", _degenerate_ground_rule(self, mult))
+            return self._scan_closed()
         if self.sector_parts():
             return self._sector_preflight()
         final = self.spectrum(1.0)
@@ -371,6 +372,26 @@ class System:
                 + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
             )
         return self._scan_open(final)
+
+    def _scan_closed(self) -> list[str]:
+        """The spectral-gap scan of a closed system (its lowest two distinct levels)."""
+        grid = np.linspace(0.0, 1.0, _preflight_points(self.dim))
+        gaps = []
+        for s in grid:
+            e = self.eigen(float(s))
+            gap = np.inf if e.n_clusters == 1 else float(np.unique(e.levels)[1] - e.levels[0])
+            gaps.append(gap)
+        k = int(np.argmin(gaps))
+        self._diagnostics = {
+            "min_spectral_gap_ghz": gaps[k] / GHZ_TO_RAD_PER_NS,
+            "s_at_min_spectral_gap": float(grid[k]),
+        }
+        if gaps[k] < 1e-3 * GHZ_TO_RAD_PER_NS:
+            return [
+                f"the spectral gap of H(s) falls to {gaps[k] / GHZ_TO_RAD_PER_NS:.3g} GHz near "
+                f"s = {grid[k]:.3f}: expect slow adiabatic convergence"
+            ]
+        return []
 
     def _scan_open(self, final: GeneratorSpectrum) -> list[str]:
         """The gap and secular scans of an open system whose L(1) is ``final``."""
@@ -421,15 +442,17 @@ class System:
         return warnings
 
     def _sector_preflight(self) -> list[str]:
-        """Pre-flight of an open system with a conserved quantity, sector by sector.
+        """Pre-flight of a system with a conserved quantity, sector by sector.
 
         The initial state must have no coherence between sectors (the sectors are
-        integrated apart) and each populated sector's own generator L_p(1) a unique
-        steady state; the gap and secular scans run per sector (distinct sectors never
-        couple), their diagnostics merged (the smallest gap), their warnings named.
+        integrated apart).  Each populated sector must have a unique target of its own:
+        open, its generator L_p(1) a unique steady state; closed, its H_p(1) a
+        non-degenerate ground state.  The gap scans (and, open, the secular scan) run
+        per sector (distinct sectors never couple), their diagnostics merged (the
+        smallest gap), their warnings named.
         """
         conserved = self.conserved
-        assert conserved is not None and self.bath is not None
+        assert conserved is not None
         rho0 = self.initial_state()
         coherence = conserved.coherence(rho0)
         if coherence > SECTOR_COHERENCE_MAX:
@@ -440,28 +463,17 @@ class System:
                 "initial state that commutes with it (the Gibbs or ground state of H(0) does)",
             )
         parts = [p for p in self.sector_parts() if p.matters]
-        full = self.spectrum(1.0).zero_count
-        finals = []
-        for part in parts:
-            final = part.system.spectrum(1.0)
-            if final.zero_count > 1:
-                raise SteadyStateError(
-                    "bath.coupling",
-                    f"conserves the {conserved.name}, and even within its {part.sector.name} "
-                    f"sector the final generator has {final.zero_count} independent steady "
-                    "states, so the state the anneal relaxes to is undetermined: "
-                    + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
-                )
-            finals.append(final)
-        warnings = []
+        scans = [(p, self._sector_scan(p)) for p in parts]
+        warnings = [f"{p.sector.name} sector: {w}" for p, scan in scans for w in scan]
         diag: dict[str, Any] = {}
-        for part, final in zip(parts, finals, strict=True):
-            for w in part.system._scan_open(final):
-                warnings.append(f"{part.sector.name} sector: {w}")
+        gap_key = "min_spectral_gap_ghz" if self.closed else "liouvillian_gap_min_ghz"
+        at_key = "s_at_min_spectral_gap" if self.closed else "s_at_liouvillian_gap_min"
+        for part, _ in scans:
             sub = part.system._diagnostics
-            if not diag or sub["liouvillian_gap_min_ghz"] < diag["liouvillian_gap_min_ghz"]:
-                keep = ("liouvillian_gap_min_ghz", "s_at_liouvillian_gap_min")
-                diag.update({k: sub[k] for k in keep})
+            if not diag or sub[gap_key] < diag[gap_key]:
+                diag.update({k: sub[k] for k in (gap_key, at_key)})
+            if self.closed:
+                continue
             diag["liouvillian_gap_final_ghz"] = min(
                 diag.get("liouvillian_gap_final_ghz", math.inf), sub["liouvillian_gap_final_ghz"]
             )
@@ -471,17 +483,58 @@ class System:
         populated = ", ".join(f"{p.sector.name} {p.weight:.6g}" for p in self.sector_parts())
         diag["conserved"] = conserved.name
         diag["sector_weights"] = {p.sector.name: p.weight for p in self.sector_parts()}
-        diag["final_steady_states"] = full
+        if self.closed:
+            mult = self.eigen(1.0).ground_multiplicity
+            level = f"{mult}-fold degenerate" if mult > 1 else "non-degenerate"
+            warnings.insert(
+                0,
+                f"conserved: {conserved.name} commutes with H(s), so the closed evolution keeps "
+                f"the population of each of its sectors ({populated}); target = ground state of "
+                f"H(1) within each sector weighted by the initial populations (the ground level "
+                f"of the full H(1) is {level}; each populated sector's own is non-degenerate)",
+            )
+        else:
+            full = self.spectrum(1.0).zero_count
+            diag["final_steady_states"] = full
+            warnings.insert(
+                0,
+                f"conserved: {conserved.name} commutes with H(s) and every coupling operator, "
+                f"so the population of each of its sectors is fixed by the initial state "
+                f"({populated}); target = Gibbs state per sector weighted by the initial "
+                f"populations (the full L(1) has {full} independent steady states, coherences "
+                "between sectors included; each populated sector's own generator has one)",
+            )
         self._diagnostics = diag
-        warnings.insert(
-            0,
-            f"conserved: {conserved.name} commutes with H(s) and every coupling operator, so "
-            f"the population of each of its sectors is fixed by the initial state "
-            f"({populated}); target = Gibbs state per sector weighted by the initial "
-            f"populations (the full L(1) has {full} independent steady states, coherences "
-            "between sectors included; each populated sector's own generator has one)",
-        )
         return warnings
+
+    def _sector_scan(self, part: SectorPart) -> list[str]:
+        """One populated sector's own checks and scans (refused when its target is not unique)."""
+        conserved = self.conserved
+        assert conserved is not None
+        sub = part.system
+        if sub.closed:
+            mult = sub.eigen(1.0).ground_multiplicity
+            if mult > 1:
+                raise SteadyStateError(
+                    "problem",
+                    f"conserves the {conserved.name}, and even within its {part.sector.name} "
+                    f"sector (initial population {part.weight:.6g}) the final ground state of "
+                    f"this closed system is {mult}-fold degenerate, so the target state is not "
+                    "unique and the error is undefined: "
+                    + _degeneracy_advice(self.hamiltonian.matrix(1.0)),
+                )
+            return sub._scan_closed()
+        assert self.bath is not None
+        final = sub.spectrum(1.0)
+        if final.zero_count > 1:
+            raise SteadyStateError(
+                "bath.coupling",
+                f"conserves the {conserved.name}, and even within its {part.sector.name} "
+                f"sector the final generator has {final.zero_count} independent steady "
+                "states, so the state the anneal relaxes to is undetermined: "
+                + steady_state_advice(self.hamiltonian.matrix(1.0), self.bath.operators),
+            )
+        return sub._scan_open(final)
 
     def _bohr_near_crossing(self, grid: NDArray[np.float64]) -> str | None:
         """Every stretch of s where distinct Bohr frequencies come within 10 rates.
@@ -567,6 +620,34 @@ def curve_warnings(curves: Any, k_end: float) -> list[str]:
         f"the error law only up to k_end = {max(continuity - 1, 0)} on them"
     )
     return out
+
+
+def _degeneracy_advice(h_final: NDArray[Any]) -> str:
+    """What a degenerate final ground level is made of, and how to lift it."""
+    diagonal = not np.any(np.abs(h_final - np.diag(np.diag(h_final))) > 0.0)
+    hint = "add a small field h_i that breaks the degeneracy"
+    if not diagonal:
+        return hint
+    e = np.real(np.diag(h_final))
+    tol = 1e-9 * max(1.0, float(np.max(np.abs(e))))
+    ground = np.flatnonzero(e <= e.min() + tol)
+    n = round(math.log2(e.size))
+    shown = ", ".join(format(int(i), f"0{n}b") for i in ground[:6])
+    more = f" and {ground.size - 6} more" if ground.size > 6 else ""
+    return (
+        f"the lowest classical configurations of H(1) are {shown}{more} (qubit 0 first, 0 for "
+        f"Z_i = +1); {hint}"
+    )
+
+
+def _degenerate_ground_rule(system: System, mult: int) -> str:
+    """Why a closed system whose final ground level is ``mult``-fold degenerate is refused."""
+    return (
+        f"gives a closed system whose final ground state is {mult}-fold degenerate, and no "
+        "conserved quantity explains it (the spin-flip parity is conserved only when every "
+        "field h_i is 0), so the target state is not unique and the error is undefined: "
+        + _degeneracy_advice(system.hamiltonian.matrix(1.0))
+    )
 
 
 def _check_density_matrix(rho: NDArray[Any], dim: int) -> NDArray[np.complex128]:

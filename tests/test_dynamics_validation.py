@@ -258,8 +258,11 @@ def test_integrators_plug_in_by_name(monkeypatch: pytest.MonkeyPatch) -> None:
 
 # ----------------------------------------------------------------------------- refusals, CLI
 def test_closed_system_with_degenerate_final_ground_state_is_refused() -> None:
-    # h = 0 and symmetric J: H(1) has a two-fold degenerate ground level when A(1) = 0
-    spec = Spec(problem=ProblemSpec(2, (0.0, 0.0), ((0, 1, -1.0),)), bath=BathSpec(spectrum="none"))
+    # fields that cancel (h = (0.5, -0.5), J = -1): 00 and 11 share the lowest energy of
+    # H(1) when A(1) = 0, and no conserved quantity explains it (zero fields, where the
+    # spin-flip parity does: tests/test_closed_parity.py)
+    problem = ProblemSpec(2, (0.5, -0.5), ((0, 1, -1.0),))
+    spec = Spec(problem=problem, bath=BathSpec(spectrum="none"))
     with pytest.raises(SteadyStateError) as err:
         simulate_spec(spec, tf_ns=5.0)
     assert err.value.field == "problem" and "degenerate" in str(err.value)

@@ -117,8 +117,10 @@ def format_result(result: SimulationResult) -> str:
     if conserved:
         weights = result.stats.get("sector_weights") or {}
         shares = ", ".join(f"{name} {w:.6g}" for name, w in weights.items())
+        # closed systems report the spectral gap of H(s), open ones the Liouvillian gap
+        target = "ground state of H(1)" if "min_spectral_gap_ghz" in result.stats else "Gibbs state"
         lines.append(
-            f"conserved       {conserved}: target = Gibbs state per sector weighted by the "
+            f"conserved       {conserved}: target = {target} per sector weighted by the "
             f"initial populations ({shares})"
         )
     gap = result.stats.get("liouvillian_gap_final_ghz")

@@ -13,6 +13,9 @@ sector's Gibbs state, so it is as small (and as precise) as for any other proble
 final deviation from the target ``sum_p w_p Gibbs_p(1)`` is
 ``sum_p w_p U_p (rho_p(tf) - Gibbs_p(1)) U_p^+``.
 
+A closed system splits the same way: each block evolves unitarily under H restricted to
+its sector, and the target is the sector's ground state of H(1).
+
 Sectors holding at most :data:`~schedforge.symmetry.SECTOR_WEIGHT_MIN` of the
 population are not integrated (their share of the deviation is below twice that);
 a one-dimensional sector has nothing to integrate (its state is fixed).
