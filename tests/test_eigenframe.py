@@ -434,6 +434,39 @@ SPARSE_PROBLEMS = {
 }
 
 
+def test_two_crossings_in_one_step_stay_apart() -> None:
+    # On the uniform 4-ring, two exact crossings between symmetry sectors (a level
+    # through a degenerate pair, twice) fall within one step near s = 0.55.  Each is
+    # passed diabatically on its own: its diabatic states stay in the span of its own
+    # eigenvectors.  Made diabatic together, dH/ds mixed levels of the two crossings
+    # (by 2e-2 here) and the ring at 1e3 ns ended 5e-8 off the general integrator.
+    system = System.from_spec(_spec_with(SPARSE_PROBLEMS["ring"], **SECTOR_BATH))
+    model = frame.EigenframeModel.from_system(system)
+    start = model.frame(np.array([0.54]), None)
+    ref, order = start.V[0], np.arange(model.dim)
+    s = np.linspace(0.54, 0.56, 4)
+    fd = np.array([s, np.ones_like(s)])
+    fr = model.frame(s, ref, order)
+    passed = crossings.pass_crossing(model, fd, ref, fr, order, 1e3, 0.02, start.pi[0])
+    assert passed is not None
+    passage, diabatic, adiabatic = passed
+    assert len(passage.groups) == 2
+    joint = model.frame(s, ref, passage.order, diabatic=(passage.labels,))
+    for group in passage.groups:
+        others = np.setdiff1d(passage.labels, group)
+        leak = np.einsum("nia,nib->nab", adiabatic.V[:, :, others], diabatic.V[:, :, group])
+        assert np.max(np.abs(leak)) < 1e-12
+        leak = np.einsum("nia,nib->nab", adiabatic.V[:, :, others], joint.V[:, :, group])
+        assert np.max(np.abs(leak)) > 1e-3  # the check can fail
+
+
+def test_crossing_groups_join_pairs_that_share_a_level() -> None:
+    passage = crossings.DiabaticPassage(
+        order=np.arange(6), pairs=((4, 1), (2, 5), (1, 3)), gap=0.0, error=0.0
+    )
+    assert [g.tolist() for g in passage.groups] == [[1, 3, 4], [2, 5]]
+
+
 @pytest.mark.parametrize(
     ("name", "s"),
     [("equal-fields", 0.4), ("uncoupled", 0.7), ("chain", 1.0), ("triangle", 0.5)],

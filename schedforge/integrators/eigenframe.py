@@ -64,11 +64,12 @@ down to 1e-10 rad/ns) turn the eigenvectors by 90 degrees over a stretch of s to
 short to follow, and below the degeneracy tolerance the frame cannot resolve the
 turn at all.  There the levels are passed diabatically, as the dynamics does when
 the gap is small: the labels follow the diabatic states, the step across the
-crossing uses them as its frame (``_diabatic_states``), and the state is
-re-expressed in the new vectors at the step's ends (the sudden limit).  What that
-leaves out is bounded with the Landau-Zener formula and the mixing angles at the
-step's ends (``_diabatic_passage``); when the bound exceeds ``FREE_MODE_RTOL`` of the
-result the point is handed over or carries a warning, as for the free modes.
+crossing uses them as its frame (``frame.diabatic_states``, one crossing at a
+time), and the state is re-expressed in the new vectors at the step's ends (the
+sudden limit).  What that leaves out is bounded with the Landau-Zener formula and
+the mixing angles at the step's ends (``crossings._diabatic_passage``); when the
+bound exceeds ``FREE_MODE_RTOL`` of the result the point is handed over or carries
+a warning, as for the free modes.
 
 Bohr-frequency sectors.  On sparse or symmetric problems (chains, rings, stars,
 uniform couplings) Bohr frequencies coincide and levels are degenerate over whole

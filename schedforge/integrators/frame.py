@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, fields
 from typing import Any
 
@@ -189,12 +190,13 @@ def diabatic_states(
     V: NDArray[np.float64],
     labels: NDArray[np.intp],
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Energies and vectors with the levels ``labels`` turned into diabatic states.
+    """Energies and vectors with the levels ``labels`` of one crossing made diabatic.
 
     Within the span of those eigenvectors, the states that diagonalise dH/ds are the
     diabatic states of a crossing whose coupling does not change along s (the
     Landau-Zener model); each replaces the eigenvector it overlaps most, and its
-    energy is its expectation value of H.  Returns new (E, V).
+    energy is its expectation value of H.  ``labels`` must be one crossing: levels
+    of different crossings would be mixed by dH/ds.  Returns new (E, V).
     """
     block = V[:, :, labels]
     sub = np.swapaxes(block, 1, 2) @ dH @ block
@@ -297,7 +299,7 @@ class EigenframeModel:
         s: NDArray[np.float64],
         reference: NDArray[np.float64] | None,
         order: NDArray[np.intp] | None = None,
-        diabatic: NDArray[np.intp] | None = None,
+        diabatic: Sequence[NDArray[np.intp]] = (),
     ) -> FrameData:
         """Eigen-decomposition and Davies data at the points ``s``.
 
@@ -306,9 +308,10 @@ class EigenframeModel:
         ``order`` ((d,) or (n, d)) relabels the levels: label a is the level of rank
         ``order[a]`` in increasing energy (after a diabatic passage through a narrow
         avoided crossing, labels follow the diabatic states, not the energy ranks).
-        The levels ``diabatic`` (labels) are replaced by the diabatic states, which
-        diagonalise dH/ds in their span, with energies the diagonal of H there (the
-        frame of a diabatic passage; their coupling in H is left out).
+        Each group of levels in ``diabatic`` (labels of one crossing) is replaced by
+        its diabatic states, which diagonalise dH/ds in the group's span, with
+        energies the diagonal of H there (the frame of a diabatic passage; the
+        coupling in H inside each group is left out).
         """
         s = np.atleast_1d(np.asarray(s, dtype=float))
         H, dH = self.hamiltonian_batch(s)
@@ -324,8 +327,8 @@ class EigenframeModel:
             idx = np.broadcast_to(np.asarray(order), E.shape)
             E = np.take_along_axis(E, idx, axis=1)
             V = np.take_along_axis(V, idx[:, None, :], axis=2)
-        if diabatic is not None:
-            E, V = diabatic_states(H, dH, E, V, diabatic)
+        for group in diabatic:
+            E, V = diabatic_states(H, dH, E, V, group)
         clusters = degenerate_clusters(E, tol) if reference is not None else []
         # parallel transport inside degenerate levels, batched over the points that
         # share a cluster (a step's nodes usually do)

@@ -58,6 +58,7 @@ class SlowStep:
     C: NDArray[np.complex128]  # (m+1, d, d) coherences (slow part where Levin)
     err: float
     iterations: int
+    resolving: bool = False  # the error is that of a resolved oscillation (|tf lambda h| >= 1)
 
 
 class _CoreBlock:
@@ -469,12 +470,19 @@ def slow_step(
         P, C, krylov_iterations = _krylov_solve(system.block_solve, P, C, tol)
         iterations += krylov_iterations
     P = np.real(P)
-    tail = max(
-        np.max(np.abs(np.tensordot(scheme.tail, P, axes=(0, 0)))),
-        np.max(np.abs(np.tensordot(scheme.tail, C, axes=(0, 0)))),
-    )
+    pop_tail = np.abs(np.tensordot(scheme.tail, P, axes=(0, 0)))
+    coh_tail = np.abs(np.tensordot(scheme.tail, C, axes=(0, 0)))
+    tail = max(np.max(pop_tail), np.max(coh_tail))
     scale = atol + rtol * max(np.max(np.abs(P[-1])), np.max(np.abs(C[-1])))
-    return SlowStep(P=P, C=C, err=float(tail / scale), iterations=iterations)
+    # the step is set by an oscillation it resolves: the largest tail is that of a
+    # resolved coherence whose phase turns by a radian or more over the step
+    worst = np.unravel_index(np.argmax(coh_tail), coh_tail.shape)
+    resolving = bool(
+        coh_tail[worst] >= np.max(pop_tail)
+        and not levin[worst]
+        and h * tf * np.min(np.abs(fr.lam[:, worst[0], worst[1]])) >= 1.0
+    )
+    return SlowStep(P=P, C=C, err=float(tail / scale), iterations=iterations, resolving=resolving)
 
 
 def _commutator(K: NDArray[np.float64], rho: NDArray[np.complex128]) -> NDArray[np.complex128]:
