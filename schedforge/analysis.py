@@ -627,11 +627,21 @@ def fit_scaling(
         short = usable & ~long_enough
         if short.any() and int(np.count_nonzero(long_enough)) < MIN_REGIME_POINTS:
             n_long = int(np.count_nonzero(long_enough))
-            return not_reached(
+            head = (
                 f"only {n_long} usable point(s) with tf >= {RELAXATION_FACTOR:g} x 1/gap = "
                 f"{_fmt_tf(tf_law_min)} ns (1/gap = {tau:.3g} ns; the law cannot hold at "
-                f"shorter tf); {_suggest_tf(max(tf_law_min, float(tf[usable].max())))}"
+                "shorter tf)"
             )
+            sunk = np.isfinite(err) & (err <= floor) & (tf >= tf_law_min)
+            if sunk.any():  # longer anneals only sink further: fill in below the floor
+                first_sunk = float(tf[sunk].min())
+                return not_reached(
+                    f"{head}; {int(np.count_nonzero(sunk))} more lie at or below the "
+                    f"numerical floor ({floor:.2g}) from {_fmt_tf(first_sunk)} ns on; add "
+                    f"tf between {_fmt_tf(tf_law_min)} and {_fmt_tf(first_sunk)} ns (at "
+                    f"least {MIN_REGIME_POINTS} points in all) or tighten numerics.atol"
+                )
+            return not_reached(f"{head}; {_suggest_tf(max(tf_law_min, float(tf[usable].max())))}")
         message = _not_reached_message(tf, err, long_enough, st, floor, regime)
         k0, k1 = end_orders(family, k_start, k_end)
         if law.dynamics == CLOSED and law.polynomial and k0 == k1:

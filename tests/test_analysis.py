@@ -143,6 +143,21 @@ def test_regime_not_reached_because_of_floor():
     assert "add tf between 1000 and 1e+04 ns" in fit.message
 
 
+def test_floor_after_the_relaxation_time_asks_for_tf_in_between():
+    # tf = 300 ns is short against 5 x 1/gap, and from 3000 ns on the error C / tf^3
+    # lies under the floor: longer anneals cannot help, tf in between (or a tighter
+    # atol) can.  (A hand-written 4-ring gave this grid; the advice was "add tf from
+    # 1000 to 1e4 ns", which it already had.)
+    tf = np.array([300.0, 1e3, 3e3, 1e4])
+    err = 0.09 / tf**3
+    fit = fit_scaling(tf, err, k_end=2, family="beta", floor=1e-11, time_scale_ns=60.8)
+    assert fit.verdict == "regime not reached"
+    assert "only 1 usable point(s)" in fit.message
+    assert "2 more lie at or below the numerical floor (1e-11) from 3000 ns on" in fit.message
+    assert "add tf between 304 and 3000 ns" in fit.message
+    assert "tighten numerics.atol" in fit.message
+
+
 def test_super_polynomial_gevrey():
     # A Gevrey-flat schedule: err ~ exp(-c sqrt(tf)); local slope -c sqrt(tf)/2 steepens.
     tf = np.geomspace(100.0, 1e4, 9)
