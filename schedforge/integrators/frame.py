@@ -56,19 +56,20 @@ def adapt_degenerate(
     s (first-order degenerate perturbation theory), so the frame is continuous at
     points such as s = 0 of a multi-qubit transverse-field driver.  In place.
     """
-    for n in range(E.shape[0]):
-        gaps = np.diff(E[n])
-        if not np.any(gaps <= tol):
-            continue
-        start = 0
-        for i in range(1, E.shape[1] + 1):
-            if i == E.shape[1] or gaps[i - 1] > tol:
-                if i - start > 1:
-                    block = V[n][:, start:i]
-                    sub = block.T @ dH[n] @ block
-                    _, rot = np.linalg.eigh(0.5 * (sub + sub.T))
-                    V[n][:, start:i] = block @ rot
-                start = i
+    close = np.diff(E, axis=1) <= tol  # E sorted per point (eigh)
+    points: dict[bytes, list[int]] = {}
+    for n in np.flatnonzero(close.any(axis=1)):
+        points.setdefault(close[n].tobytes(), []).append(int(n))
+    # points with the same degenerate groups (a step's nodes, as a rule) in one batch
+    for ns in points.values():
+        at = np.array(ns)
+        row = np.concatenate(([False], close[ns[0]], [False])).astype(np.int8)
+        edges = np.flatnonzero(np.diff(row))  # rising and falling edges of each group
+        for start, stop in zip(edges[::2], edges[1::2] + 1, strict=True):
+            block = V[at, :, start:stop]
+            sub = np.swapaxes(block, 1, 2) @ dH[at] @ block
+            _, rot = np.linalg.eigh(0.5 * (sub + np.swapaxes(sub, 1, 2)))
+            V[at, :, start:stop] = block @ rot
 
 
 def degenerate_clusters(E: NDArray[np.float64], tol: float) -> list[tuple[int, NDArray[np.intp]]]:
