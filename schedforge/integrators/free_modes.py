@@ -68,8 +68,11 @@ CLUSTER_WORK_LIMIT = 2.0e6
 #: Degree of the Taylor polynomial in the stacked matrix exponential (norm <= 1/2).
 TAYLOR_DEGREE = 14
 #: Largest matrices exponentiated by the stacked Taylor method: 1.7-2x faster than
-#: scipy's loop over the stack up to 5 x 5, even at 8 x 8, slower at 12 x 12 (measured).
-EXPM_TAYLOR_SIZE = 6
+#: scipy's loop over the stack up to 5 x 5, even at 8 x 8, slower at 12 x 12 (measured
+#: 2026-12-01).  Remeasured 2026-12-03 on stacks like those of the uniform 4-ring's
+#: clusters (norm about 1, 500-4900 matrices): 1.9x faster at 9 x 9, 1.2x at 12 x 12,
+#: even at 16 x 16; the clusters' substeps keep the norm below 1/2, so no squaring.
+EXPM_TAYLOR_SIZE = 12
 #: Fixed cost of one small matrix exponential in the same units (flops of n^3), for
 #: the work limit: for tiny clusters the per-matrix overhead dominates.
 EXPM_OVERHEAD = 500

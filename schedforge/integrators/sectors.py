@@ -279,11 +279,20 @@ def propagate_sector_modes(
 
 
 def rotation_superoperator(K: NDArray[np.float64]) -> sparse.csr_matrix:
-    """``rho -> -[K, rho]`` as a sparse matrix on the row-major vector of rho."""
+    """``rho -> -[K, rho]`` as a sparse matrix on the row-major vector of rho.
+
+    Built from K's nonzero entries k = K_ab: ``-(K rho)_(a, c)`` takes ``-k rho_(b, c)``
+    and ``(rho K)_(c, b)`` takes ``k rho_(c, a)``, for every c (the entries of
+    ``-(K (x) I - I (x) K^T)``, without the Kronecker products' overhead).
+    """
     d = K.shape[0]
-    Ks = sparse.csr_matrix(K)
-    eye = sparse.identity(d, format="csr")
-    return sparse.csr_matrix(-(sparse.kron(Ks, eye) - sparse.kron(eye, Ks.T)))
+    a, b = np.nonzero(K)
+    k = K[a, b]
+    c = np.arange(d)
+    rows = np.concatenate([np.add.outer(a * d, c).ravel(), np.add.outer(c * d, b).ravel()])
+    cols = np.concatenate([np.add.outer(b * d, c).ravel(), np.add.outer(c * d, a).ravel()])
+    vals = np.concatenate([np.repeat(-k, d), np.tile(k, d)])
+    return sparse.csr_matrix((vals, (rows, cols)), shape=(d * d, d * d))
 
 
 def apply_sector(sector: list[Any], rho: NDArray[np.complex128]) -> NDArray[np.complex128]:
