@@ -135,8 +135,8 @@ def test_ising_short_anneal_matches_general(problem: ProblemSpec, tf: float) -> 
 def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
     # against the definition, by brute force: the longest candidate step h' <= limit with
     # no coherence in 1 < |lambda| h' < LEVIN_COMFORT (else the current h)
-    def brute(lam_abs, h, limit):
-        lo, hi = 1.0 / lam_abs, stepper.LEVIN_COMFORT / lam_abs
+    def brute(lam_abs, h, limit, comfort=stepper.LEVIN_COMFORT):
+        lo, hi = 1.0 / lam_abs, comfort / lam_abs
         cands = np.concatenate([lo, hi * 1.01, [limit]])
         cands = np.sort(cands[(cands > h) & (cands <= limit)])[::-1]
         for c in cands:
@@ -149,6 +149,9 @@ def test_clean_jump_is_the_longest_step_leaving_no_coherence_half_way() -> None:
         lam = 10 ** rng.uniform(0, 6, rng.integers(1, 40))
         h, limit = 10 ** rng.uniform(-7, -1.5), 10 ** rng.uniform(-4, -1)
         assert stepper.clean_jump(lam, h, limit) == brute(lam, h, limit)
+        # the fallback comfort (a jump after resolved oscillations) by the same definition
+        fallback = stepper.LEVIN_FALLBACK_COMFORT
+        assert stepper.clean_jump(lam, h, limit, fallback) == brute(lam, h, limit, fallback)
 
 
 @pytest.mark.parametrize(
