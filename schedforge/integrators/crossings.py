@@ -62,8 +62,9 @@ class DiabaticPassage:
         Pairs that share a label are one crossing (connected components of
         ``pairs``).  Levels of different crossings keep their coupling: on the uniform
         4-qubit ring, two crossings passed in one step and turned into diabatic states
-        together mixed two levels 20 rad/ns apart by 8e-3 and left a spurious
-        oscillation of 5e-8 in the final state (2026-12-03).
+        together mixed two levels 20 rad/ns apart (by 8e-3 in a step of 5e-3 in x, 2e-2
+        over s = 0.54..0.56) and left a spurious oscillation that put the final state
+        5e-8 off the general integrator at 1e3 ns (2026-12-03).
         """
         groups: list[set[int]] = []
         for a, b in self.pairs:

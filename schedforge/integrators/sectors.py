@@ -52,6 +52,7 @@ __all__ = [
 
 #: Groupings whose index work is kept (the oldest is dropped beyond this).
 _STRUCTURES_MAX = 64
+#: Largest dimension (levels) whose groupings are kept: a few MB each at 64 levels.
 _STRUCTURES_MAX_DIM = 64
 _STRUCTURES: dict[tuple[int, str, bytes], _SectorStructure] = {}
 
