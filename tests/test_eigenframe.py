@@ -501,6 +501,43 @@ def test_sector_coupling_is_the_rest_of_the_davies_generator(name: str, s: float
     assert np.max(np.abs(D[np.ix_(pop, pop)].real - fr.W[0])) <= 1e-12 * np.max(np.abs(D))
 
 
+@pytest.mark.parametrize("largest_laid_out", [1, 3])
+@pytest.mark.parametrize(("name", "s"), [("equal-fields", 0.4), ("triangle", 0.5), ("ring", 0.0)])
+def test_factored_sector_coupling_applies_the_davies_generator(
+    name: str, s: float, largest_laid_out: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # groups above FACTORED_GROUP_MIN elements are applied as sum_k L rho L^+ minus
+    # what the eigenframe has; it must act as the dense Davies generator (less its
+    # diagonal and population rates) does, alone (1) and beside laid-out groups (3)
+    from schedforge.davies import DaviesGenerator, EigenDecomposition, eigen_decomposition
+    from schedforge.integrators import sectors
+
+    monkeypatch.setattr(sectors, "FACTORED_GROUP_MIN", largest_laid_out)
+    system = System.from_spec(_spec_with(SPARSE_PROBLEMS[name], **SECTOR_BATH))
+    model = frame.EigenframeModel.from_system(system)
+    fr = model.frame(np.array([s]), None)
+    E, V = fr.E[0], fr.V[0]
+    tol = system.degeneracy_tol
+    S = sectors.sector_coupling(E, V, model.operators, model.gamma, tol)
+    assert isinstance(S, sectors.FactoredCoupling)
+    ref_eig = eigen_decomposition(system.hamiltonian.matrix(s), tol)
+    eig = EigenDecomposition(E, V, ref_eig.labels, ref_eig.levels, tol)
+    D = DaviesGenerator(eig, system.bath, bohr_tol=tol).sparse_eigen(coherent=False).toarray()
+    d = E.size
+    pop = np.arange(d) * (d + 1)
+    expected = D.copy()
+    np.fill_diagonal(expected, 0.0)
+    expected[np.ix_(pop, pop)] = 0.0
+    rng = np.random.default_rng(3)
+    for _ in range(3):
+        v = rng.standard_normal(d * d) + 1j * rng.standard_normal(d * d)
+        want = expected @ v
+        assert np.max(np.abs(S @ v - want)) <= 1e-12 * np.max(np.abs(want))
+    # laid out for the free modes, the same matrix
+    laid_out = sectors.as_matrices([S])[0]
+    assert np.max(np.abs(laid_out.toarray() - expected)) <= 1e-12 * np.max(np.abs(D))
+
+
 def test_transported_frame_rotation_matches_finite_differences() -> None:
     # a ring with uniform couplings has levels degenerate all along the anneal; the
     # frame inside them is transported from a reference, and its rotation

@@ -35,11 +35,13 @@ from scipy import sparse
 from scipy.linalg import expm
 from scipy.sparse import csgraph
 
-from ..davies import bohr_groups, group_levels, pair_pairs
+from ..davies import bohr_groups, group_levels
 from .frame import EigenframeModel, FrameData, frame_tol
 
 __all__ = [
+    "FactoredCoupling",
     "apply_sector",
+    "as_matrices",
     "propagate_sector_modes",
     "resonant_coupling",
     "rotation_superoperator",
@@ -55,6 +57,9 @@ _STRUCTURES_MAX = 64
 #: Largest dimension (levels) whose groupings are kept: a few MB each at 64 levels.
 _STRUCTURES_MAX_DIM = 64
 _STRUCTURES: dict[tuple[int, str, bytes], _SectorStructure] = {}
+#: Groups of more elements than this are applied in factored form
+#: (:class:`FactoredCoupling`) instead of laid out as a matrix.
+FACTORED_GROUP_MIN = 64
 
 
 def sector_coupling(
@@ -107,28 +112,55 @@ def sector_coupling_batch(
     n, d = E.shape
     levels = np.stack([group_levels(E[j], tol) for j in range(n)])
     found = [bohr_groups(levels[j], tol) for j in range(n)]
-    out: list[sparse.csr_matrix | None] = [None] * n
+    omega = np.stack([w for w, _, _ in found])
+    g = np.asarray(gamma(omega.ravel()), dtype=float).reshape(n, d * d)
+    sqrt_g = np.sqrt(np.maximum(g, 0.0))
+    ops = np.stack([np.swapaxes(V, 1, 2).conj() @ op @ V for op in operators], axis=1).reshape(
+        n, len(operators), d * d
+    )
+    # points with the same grouping (a step's nodes, as a rule) share the index work
     shared: dict[bytes, list[int]] = {}
-    for j, (_, gid, _) in enumerate(found):
-        sizes = np.bincount(gid.ravel())
-        zero_group = gid[0, 0]
-        others = np.delete(sizes, zero_group)
-        if sizes[zero_group] == d and (others.size == 0 or others.max() == 1):
-            continue  # distinct levels and Bohr frequencies here
-        shared.setdefault(gid.tobytes(), []).append(j)
-    for points in shared.values():
-        at = np.array(points)
-        omega = np.stack([found[j][0] for j in points])
-        structure = _structure(found[points[0]][1])
-        g = np.asarray(gamma(omega.ravel()), dtype=float).reshape(at.size, d * d)
-        sqrt_g = np.sqrt(np.maximum(g, 0.0))
-        Vn = V[at]
-        ops = np.stack(
-            [np.swapaxes(Vn, 1, 2).conj() @ op @ Vn for op in operators], axis=1
-        ).reshape(at.size, len(operators), d * d)
-        for j, S in zip(points, structure.matrices(sqrt_g, ops), strict=True):
-            out[j] = S
+    for j, (_, gj, _) in enumerate(found):
+        shared.setdefault(gj.tobytes(), []).append(j)
+    groupings = [(_coupled_grouping(found[pts[0]][1]), np.array(pts)) for pts in shared.values()]
+    out: list[Any] = [None] * n
+    for gid, at in groupings:
+        if gid is not None:
+            for j, S in zip(at, _couplings(gid, sqrt_g[at], ops[at]), strict=True):
+                out[j] = S
     return out
+
+
+def _couplings(
+    gid: NDArray[np.int64], sqrt_g: NDArray[np.float64], ops: NDArray[np.complex128]
+) -> list[Any]:
+    """The couplings of one grouping at n points: large groups factored, others laid out."""
+    large = [m for m in coupling_groups(gid) if m.shape[1] > FACTORED_GROUP_MIN]
+    if not large:
+        return _structure(gid).matrices(sqrt_g, ops)
+    # the large groups factored, the others laid out (large ones made lone elements)
+    rest_gid = gid.copy().ravel()
+    taken = np.concatenate([m.ravel() for m in large])
+    rest_gid[taken] = rest_gid.max() + 1 + np.arange(taken.size)
+    rest = _structure(rest_gid.reshape(gid.shape)).matrices(sqrt_g, ops)
+    return [
+        FactoredCoupling(gid, large, sqrt_g[j], ops[j], rest[j]) for j in range(sqrt_g.shape[0])
+    ]
+
+
+def _coupled_grouping(gid: NDArray[np.int64]) -> NDArray[np.int64] | None:
+    """``gid``, or None when it groups nothing beyond the populations.
+
+    The populations (zero frequency) always form a group of d; any larger zero group,
+    or any other group of two or more, couples elements the eigenframe treats apart.
+    """
+    d = gid.shape[0]
+    sizes = np.bincount(gid.ravel())
+    zero = gid[0, 0]
+    others = np.delete(sizes, zero)
+    if sizes[zero] == d and (others.size == 0 or others.max() == 1):
+        return None
+    return gid
 
 
 def _structure(gid: NDArray[np.int64]) -> _SectorStructure:
@@ -148,6 +180,32 @@ def _structure(gid: NDArray[np.int64]) -> _SectorStructure:
     return found
 
 
+def coupling_groups(gid: NDArray[np.int64]) -> list[NDArray[np.int64]]:
+    """The groups of elements that couple distinct elements, by size.
+
+    A lone element, and the populations without coherences between degenerate
+    levels, give diagonal terms and population rates alone, which the eigenframe
+    already has; every other group of two or more is kept.
+
+    Returns
+    -------
+    list of ndarray of int (groups, size)
+        Flat indices (``a d + b``) of the members, one array per group size.
+    """
+    d = gid.shape[0]
+    flat = gid.ravel()
+    sizes = np.bincount(flat)
+    off_diagonal = np.bincount(flat, weights=np.arange(d * d) % (d + 1) != 0, minlength=sizes.size)
+    useful = (sizes >= 2) & (off_diagonal > 0)
+    order = np.argsort(flat, kind="stable")
+    starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
+    out = []
+    for size in np.unique(sizes[useful]):
+        groups = np.flatnonzero(useful & (sizes == size))
+        out.append(order[starts[groups][:, None] + np.arange(size)[None, :]])
+    return out
+
+
 class _SectorStructure:
     """Index work of the sector couplings for one grouping of Bohr frequencies.
 
@@ -155,15 +213,24 @@ class _SectorStructure:
     degenerate levels) is laid out once: ``to_csr`` sums each point's values into the
     CSR pattern of the whole grouping, so a point costs two sparse products instead
     of building and sorting a matrix (the uniform 4-ring at 100 ns spent a quarter of
-    its time there).
+    its time there).  Only the groups of :func:`coupling_groups` are laid out.  The
+    weights of a group are its Gram matrix ``sum_k Y_k^T conj(Y_k)`` with ``Y_k``
+    the group's entries of ``sqrt(gamma) L_k``, computed for all groups of one size
+    together (the fully connected 6-qubit instance at s = 0 has groups of up to 924
+    elements and 2.7 million pairs).
     """
 
     def __init__(self, gid: NDArray[np.int64]) -> None:
         d = gid.shape[0]
         self.d = d
         D = d * d
-        p, q = pair_pairs(gid)
-        self.p, self.q = p, q
+        # members of the useful groups, one (groups, size) array per group size
+        self.members = coupling_groups(gid)
+        ps = [np.repeat(m, m.shape[1], axis=1).ravel() for m in self.members]
+        qs = [np.tile(m, (1, m.shape[1])).ravel() for m in self.members]
+        p = np.concatenate(ps) if ps else np.zeros(0, dtype=np.int64)
+        q = np.concatenate(qs) if qs else np.zeros(0, dtype=np.int64)
+        self.size = p.size
         ap, bp, aq, bq = p // d, p % d, q // d, q % d
         # jump terms: rho_(bp, bq) -> rho_(ap, aq)
         jump_rows, jump_cols = ap * d + aq, bp * d + bq
@@ -207,12 +274,16 @@ class _SectorStructure:
         self, sqrt_g: NDArray[np.float64], ops: NDArray[np.complex128]
     ) -> list[sparse.csr_matrix | None]:
         """The couplings at each point from its sqrt(gamma) (n, d^2) and operators."""
-        p, q = self.p, self.q
-        weight = (
-            sqrt_g[:, p]
-            * sqrt_g[:, q]
-            * np.einsum("nij,nij->nj", ops[:, :, p], ops[:, :, q].conj())
-        )
+        n = sqrt_g.shape[0]
+        if not self.indices.size:
+            return [None] * n
+        parts = []
+        for members in self.members:
+            # Y (n, ops, groups, size): a Gram matrix per group and point
+            Y = sqrt_g[:, None, members] * ops[:, :, members]
+            Yt = np.moveaxis(Y, 1, -1)  # (n, groups, size, ops)
+            parts.append((Yt @ np.swapaxes(Yt, -1, -2).conj()).reshape(n, -1))
+        weight = np.concatenate(parts, axis=1)
         kconj = (self.k_sum.T @ weight[:, self.same].T).T.conj()  # (n, K entries)
         data = (self.to_csr.T @ np.concatenate([weight, kconj], axis=1).T).T
         out: list[sparse.csr_matrix | None] = []
@@ -223,6 +294,106 @@ class _SectorStructure:
             S.eliminate_zeros()
             out.append(S if S.nnz else None)
         return out
+
+
+class FactoredCoupling:
+    """The sector coupling of one point, its large groups applied without a matrix.
+
+    The jump terms of a group g are ``sum_k L_gk rho L_gk^+`` with ``L_gk`` the
+    group's entries of ``sqrt(gamma) L_k`` (|g| entries each), the anticommutator is
+    ``-(K rho + rho K) / 2`` with ``K = sum L_gk^+ L_gk`` off its diagonal, and what
+    the eigenframe already has (the diagonal of the superoperator and the
+    population-to-population rates) is taken off again.  Applying a group costs about
+    ``2 d |g|`` products per operator, laying it out ``|g|^2`` entries: near s = 0 the
+    driver's ladder puts up to 924 elements in one group (the fully connected 6-qubit
+    instance: 2.7 million entries, about 1.3 s per step to lay out at 9 nodes).  The
+    small groups come laid out (``rest``); :func:`as_matrices` lays out the whole
+    coupling where the entries themselves are needed (free modes of the sector).
+    """
+
+    def __init__(
+        self,
+        gid: NDArray[np.int64],
+        members: list[NDArray[np.int64]],
+        sqrt_g: NDArray[np.float64],
+        ops: NDArray[np.complex128],
+        rest: sparse.csr_matrix | None = None,
+    ) -> None:
+        d = gid.shape[0]
+        self.d, self.gid, self.sqrt_g, self.ops, self.rest = d, gid, sqrt_g, ops, rest
+        n_ops = ops.shape[0]
+        # one block b per (group, operator): L_b[a, b'] = Y for member (a, b')
+        elem = np.concatenate([m.ravel() for m in members])
+        first = np.cumsum([0] + [m.shape[0] for m in members])
+        group = np.concatenate(
+            [
+                start + np.repeat(np.arange(m.shape[0]), m.shape[1])
+                for start, m in zip(first[:-1], members, strict=True)
+            ]
+        )
+        a, b = elem // d, elem % d
+        Y = sqrt_g[None, elem] * ops[:, elem]  # (ops, members)
+        self.n_blocks = int(first[-1]) * n_ops
+        block = (group[None, :] + int(first[-1]) * np.arange(n_ops)[:, None]).ravel()
+        A, B = np.tile(a, n_ops), np.tile(b, n_ops)
+        # L (blocks d, d): row block d + a, column b'; R^T (d, blocks d): row a,
+        # column block d + b', conj(Y), so that sum_b T_b L_b^+ = (R^T Tcat^T)^T
+        # with Tcat the blocks T_b = L_b rho side by side
+        self.L = sparse.csr_matrix((Y.ravel(), (block * d + A, B)), shape=(self.n_blocks * d, d))
+        self.Rt = sparse.csr_matrix(
+            (Y.conj().ravel(), (A, block * d + B)), shape=(d, self.n_blocks * d)
+        )
+        K = (self.L.conj().T @ self.L).toarray()
+        np.fill_diagonal(K, 0.0)
+        self.K = K
+        # what the eigenframe has already: population rates (b' -> a, a != b') ...
+        off = a != b
+        w = np.sum(np.abs(Y[:, off]) ** 2, axis=0)
+        self.pop = sparse.csr_matrix((w, (a[off], b[off])), shape=(d, d))
+        # ... and the diagonal of the jump terms (rho_ac -> rho_ac, both (a, a) and
+        # (c, c) in the zero-frequency group)
+        diag = a == b
+        self.dephase = None
+        if diag.any():
+            y = np.zeros((n_ops, d), dtype=complex)
+            y[:, a[diag]] = Y[:, diag]
+            self.dephase = y.T @ y.conj()
+
+    def __matmul__(self, vec: NDArray[np.complex128]) -> NDArray[np.complex128]:
+        """The coupling applied to the row-major vector of rho."""
+        d = self.d
+        rho = vec.reshape(d, d)
+        T = (self.L @ rho).reshape(self.n_blocks, d, d)
+        Tcat = np.ascontiguousarray(T.transpose(1, 0, 2)).reshape(d, self.n_blocks * d)
+        out = (self.Rt @ Tcat.T).T
+        out = out - 0.5 * (self.K @ rho + rho @ self.K)
+        out[np.diag_indices(d)] -= self.pop @ np.diag(rho)
+        if self.dephase is not None:
+            out = out - self.dephase * rho
+        out = out.ravel()
+        return out if self.rest is None else out + self.rest @ vec
+
+
+def as_matrices(sector: list[Any]) -> list[Any]:
+    """A step's sector couplings as sparse matrices (laid out where they were factored).
+
+    For the free modes, which need the entries themselves; points of one grouping are
+    laid out together.
+    """
+    factored = [j for j, S in enumerate(sector) if isinstance(S, FactoredCoupling)]
+    if not factored:
+        return sector
+    shared: dict[bytes, list[int]] = {}
+    for j in factored:
+        shared.setdefault(sector[j].gid.tobytes(), []).append(j)
+    out = list(sector)
+    for points in shared.values():
+        sqrt_g = np.stack([sector[j].sqrt_g for j in points])
+        ops = np.stack([sector[j].ops for j in points])
+        laid_out = _structure(sector[points[0]].gid).matrices(sqrt_g, ops)
+        for j, S in zip(points, laid_out, strict=True):
+            out[j] = S
+    return out
 
 
 def propagate_sector_modes(

@@ -46,7 +46,13 @@ from .free_modes import (
     transient_dressing,
     transient_rates,
 )
-from .sectors import propagate_sector_modes, resonant_coupling, sector_couplings, sector_leak
+from .sectors import (
+    as_matrices,
+    propagate_sector_modes,
+    resonant_coupling,
+    sector_couplings,
+    sector_leak,
+)
 from .slow_step import SlowStep, predict_step, slow_step
 
 __all__ = [
@@ -617,6 +623,7 @@ class EigenframeStepper:
             self.stats["clustered_steps"] = self.stats.get("clustered_steps", 0) + 1
         if sector is not None and matter:
             # modes of one Bohr sector feed each other without oscillation: together
+            sector = as_matrices(sector)
             A_sec, in_sector = propagate_sector_modes(
                 np.where(free, A_start, 0.0),
                 free,
