@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import replace
+from typing import Any
 
 import numpy as np
 import pytest
@@ -470,14 +471,10 @@ def test_crossing_groups_join_pairs_that_share_a_level() -> None:
     assert [g.tolist() for g in passage.groups] == [[1, 3, 4], [2, 5]]
 
 
-@pytest.mark.parametrize(
-    ("name", "s"),
-    [("equal-fields", 0.4), ("uncoupled", 0.7), ("chain", 1.0), ("triangle", 0.5)],
-)
-def test_sector_coupling_is_the_rest_of_the_davies_generator(name: str, s: float) -> None:
-    # the sector coupling must be exactly the Davies generator (checked against QuTiP's
-    # brmesolve in test_qutip_crosscheck.py) minus its diagonal and its population
-    # rates, in the frame's own basis
+def _sector_and_davies(name: str, s: float) -> tuple[Any, Any, Any, Any]:
+    """The sector coupling at s, the dense Davies generator in the frame's basis, the
+    generator less its diagonal and population rates (what the coupling must be), and
+    the frame."""
     from schedforge.davies import DaviesGenerator, EigenDecomposition, eigen_decomposition
     from schedforge.integrators.sectors import sector_coupling
 
@@ -490,11 +487,24 @@ def test_sector_coupling_is_the_rest_of_the_davies_generator(name: str, s: float
     ref_eig = eigen_decomposition(system.hamiltonian.matrix(s), tol)
     eig = EigenDecomposition(E, V, ref_eig.labels, ref_eig.levels, tol)
     D = DaviesGenerator(eig, system.bath, bohr_tol=tol).sparse_eigen(coherent=False).toarray()
-    d = E.size
-    pop = np.arange(d) * (d + 1)
+    pop = np.arange(E.size) * (E.size + 1)
     expected = D.copy()
     np.fill_diagonal(expected, 0.0)
     expected[np.ix_(pop, pop)] = 0.0
+    return S, D, expected, fr
+
+
+@pytest.mark.parametrize(
+    ("name", "s"),
+    [("equal-fields", 0.4), ("uncoupled", 0.7), ("chain", 1.0), ("triangle", 0.5)],
+)
+def test_sector_coupling_is_the_rest_of_the_davies_generator(name: str, s: float) -> None:
+    # the sector coupling must be exactly the Davies generator (checked against QuTiP's
+    # brmesolve in test_qutip_crosscheck.py) minus its diagonal and its population
+    # rates, in the frame's own basis
+    S, D, expected, fr = _sector_and_davies(name, s)
+    d = fr.E.shape[1]
+    pop = np.arange(d) * (d + 1)
     assert S is not None and np.any(expected != 0)
     assert np.max(np.abs(S.toarray() - expected)) <= 1e-12 * np.max(np.abs(D))
     # and the population block is the eigenframe's Pauli rate matrix
@@ -509,28 +519,15 @@ def test_factored_sector_coupling_applies_the_davies_generator(
     # groups above FACTORED_GROUP_MIN elements are applied as sum_k L rho L^+ minus
     # what the eigenframe has; it must act as the dense Davies generator (less its
     # diagonal and population rates) does, alone (1) and beside laid-out groups (3)
-    from schedforge.davies import DaviesGenerator, EigenDecomposition, eigen_decomposition
     from schedforge.integrators import sectors
 
     monkeypatch.setattr(sectors, "FACTORED_GROUP_MIN", largest_laid_out)
-    system = System.from_spec(_spec_with(SPARSE_PROBLEMS[name], **SECTOR_BATH))
-    model = frame.EigenframeModel.from_system(system)
-    fr = model.frame(np.array([s]), None)
-    E, V = fr.E[0], fr.V[0]
-    tol = system.degeneracy_tol
-    S = sectors.sector_coupling(E, V, model.operators, model.gamma, tol)
+    S, D, expected, _ = _sector_and_davies(name, s)
     assert isinstance(S, sectors.FactoredCoupling)
-    ref_eig = eigen_decomposition(system.hamiltonian.matrix(s), tol)
-    eig = EigenDecomposition(E, V, ref_eig.labels, ref_eig.levels, tol)
-    D = DaviesGenerator(eig, system.bath, bohr_tol=tol).sparse_eigen(coherent=False).toarray()
-    d = E.size
-    pop = np.arange(d) * (d + 1)
-    expected = D.copy()
-    np.fill_diagonal(expected, 0.0)
-    expected[np.ix_(pop, pop)] = 0.0
+    d2 = expected.shape[0]
     rng = np.random.default_rng(3)
     for _ in range(3):
-        v = rng.standard_normal(d * d) + 1j * rng.standard_normal(d * d)
+        v = rng.standard_normal(d2) + 1j * rng.standard_normal(d2)
         want = expected @ v
         assert np.max(np.abs(S @ v - want)) <= 1e-12 * np.max(np.abs(want))
     # laid out for the free modes, the same matrix
