@@ -603,7 +603,7 @@ B0_ghz = 2.5
 
 [problem]
 # H_problem = sum_i h_i Z_i + sum_(i<j) J_ij Z_i Z_j (dimensionless), 1 to {MAX_QUBITS} qubits
-# (cost per point: seconds up to 5 qubits, about 1.5 min at 6, longer at 7, hours at 8).
+# (cost per point: seconds up to 5 qubits, about a minute at 6, longer at 7, hours at 8).
 qubits = 1
 h = [0.7]          # one entry per qubit
 J = []             # couplings as [i, j, J_ij] with 0 <= i < j < qubits, e.g. [[0, 1, -1.0]]

@@ -60,6 +60,8 @@ _STRUCTURES: dict[tuple[int, str, bytes], _SectorStructure] = {}
 #: Groups of more elements than this are applied in factored form
 #: (:class:`FactoredCoupling`) instead of laid out as a matrix.
 FACTORED_GROUP_MIN = 64
+#: Elements of rho (d^2) up to which the free modes' resonant couplings are dense.
+DENSE_MODES_MAX = 256
 
 
 def sector_coupling(
@@ -428,11 +430,14 @@ def propagate_sector_modes(
     mats = [(j, C) for j, C in enumerate(coupling) if C is not None]
     if idx.size < 2 or not mats:
         return out, done
-    total = sparse.csr_matrix((d * d, d * d), dtype=complex)
+    dense = isinstance(mats[0][1], np.ndarray)
+    total: Any = np.zeros((d * d, d * d), dtype=complex) if dense else None
+    if not dense:
+        total = sparse.csr_matrix((d * d, d * d), dtype=complex)
     for j, C in mats:
         total = total + (h * weights[j]) * C
-    sub = total[idx][:, idx]
-    if sub.nnz == 0:
+    sub = total[np.ix_(idx, idx)] if dense else total[idx][:, idx]
+    if (not sub.any()) if dense else sub.nnz == 0:
         return out, done
     n_comp, comp = csgraph.connected_components(abs(sub) + abs(sub).T, directed=False)
     sizes = np.bincount(comp, minlength=n_comp)
@@ -443,7 +448,7 @@ def propagate_sector_modes(
     for k in np.flatnonzero(sizes > 1):
         members = np.flatnonzero(comp == k)
         modes = idx[members]
-        block = sub[members][:, members].toarray()
+        block = sub[np.ix_(members, members)] if dense else sub[members][:, members].toarray()
         block[np.diag_indices(members.size)] += growth[modes]
         flat_out[modes] = expm(block) @ amps[modes]
         flat_done[modes] = True
@@ -498,16 +503,27 @@ def resonant_coupling(
 
     ``tf`` times the sector coupling, plus the frame's rotation ``-f' [K, .]`` inside
     degenerate levels (the transported frame turns there, and the modes it couples
-    share their frequency exactly).
+    share their frequency exactly).  Dense arrays up to ``DENSE_MODES_MAX`` elements of
+    rho (sparse matrices cost more than their products there: the triangle at 1e5 ns
+    spent half its time in scipy.sparse's overhead on 64 x 64 matrices), else sparse.
     """
     tol = frame_tol(fr.E)
-    out = []
+    d = fr.E.shape[1]
+    dense = d * d <= DENSE_MODES_MAX
+    out: list[Any] = []
     for j, S in enumerate(sector):
         E = fr.E[j]
         inside = (np.abs(E[:, None] - E[None, :]) <= tol) & ~np.eye(E.size, dtype=bool)
-        C = None if S is None else tf * S
+        C: Any = None
+        if S is not None:
+            C = tf * (S.toarray() if dense else S)
         if inside.any():
-            R = fp[j] * rotation_superoperator(np.where(inside, fr.K[j], 0.0))
+            K = np.where(inside, fr.K[j], 0.0)
+            if dense:  # -(K (x) I - I (x) K^T), as rotation_superoperator lays it out
+                eye = np.eye(d)
+                R: Any = fp[j] * (np.kron(eye, K.T) - np.kron(K, eye))
+            else:
+                R = fp[j] * rotation_superoperator(K)
             C = R if C is None else C + R
         out.append(C)
     return out
