@@ -56,6 +56,8 @@ __all__ = [
 _STRUCTURES_MAX = 64
 #: Largest dimension (levels) whose groupings are kept: a few MB each at 64 levels.
 _STRUCTURES_MAX_DIM = 64
+#: Largest structure (pairs of elements) that is kept.
+_STRUCTURES_MAX_PAIRS = 200_000
 _STRUCTURES: dict[tuple[int, str, bytes], _SectorStructure] = {}
 #: Groups of more elements than this are applied in factored form
 #: (:class:`FactoredCoupling`) instead of laid out as a matrix.
@@ -168,17 +170,20 @@ def _coupled_grouping(gid: NDArray[np.int64]) -> NDArray[np.int64] | None:
 def _structure(gid: NDArray[np.int64]) -> _SectorStructure:
     """The (cached) structure of one grouping: most steps repeat the previous one's.
 
-    Cached up to ``_STRUCTURES_MAX_DIM`` levels (6 qubits); above, the index arrays
-    grow as d^4 at worst and are rebuilt per step.
+    Cached up to ``_STRUCTURES_MAX_DIM`` levels (6 qubits) and ``_STRUCTURES_MAX_PAIRS``
+    pairs; above, the index arrays grow as d^4 at worst (the whole ladder at s = 0 of 6
+    qubits: 2.7 million pairs, a few hundred MB) and are rebuilt when needed.
     """
     if gid.shape[0] > _STRUCTURES_MAX_DIM:
         return _SectorStructure(gid)
     key = (gid.shape[0], gid.dtype.str, gid.tobytes())
     found = _STRUCTURES.get(key)
     if found is None:
-        if len(_STRUCTURES) >= _STRUCTURES_MAX:
-            _STRUCTURES.pop(next(iter(_STRUCTURES)))
-        found = _STRUCTURES[key] = _SectorStructure(gid)
+        found = _SectorStructure(gid)
+        if found.size <= _STRUCTURES_MAX_PAIRS:
+            if len(_STRUCTURES) >= _STRUCTURES_MAX:
+                _STRUCTURES.pop(next(iter(_STRUCTURES)))
+            _STRUCTURES[key] = found
     return found
 
 
