@@ -116,22 +116,23 @@ def sector_coupling_batch(
     n, d = E.shape
     levels = np.stack([group_levels(E[j], tol) for j in range(n)])
     found = [bohr_groups(levels[j], tol) for j in range(n)]
-    omega = np.stack([w for w, _, _ in found])
-    g = np.asarray(gamma(omega.ravel()), dtype=float).reshape(n, d * d)
-    sqrt_g = np.sqrt(np.maximum(g, 0.0))
-    ops = np.stack([np.swapaxes(V, 1, 2).conj() @ op @ V for op in operators], axis=1).reshape(
-        n, len(operators), d * d
-    )
     # points with the same grouping (a step's nodes, as a rule) share the index work
     shared: dict[bytes, list[int]] = {}
     for j, (_, gj, _) in enumerate(found):
         shared.setdefault(gj.tobytes(), []).append(j)
-    groupings = [(_coupled_grouping(found[pts[0]][1]), np.array(pts)) for pts in shared.values()]
     out: list[Any] = [None] * n
-    for gid, at in groupings:
-        if gid is not None:
-            for j, S in zip(at, _couplings(gid, sqrt_g[at], ops[at]), strict=True):
-                out[j] = S
+    for points in shared.values():
+        gid = _coupled_grouping(found[points[0]][1])
+        if gid is None:
+            continue  # distinct levels and Bohr frequencies at these points
+        at = np.array(points)
+        omega = np.stack([found[j][0] for j in points])
+        g = np.asarray(gamma(omega.ravel()), dtype=float).reshape(at.size, d * d)
+        Vn = V[at]
+        ops = np.stack([np.swapaxes(Vn, 1, 2).conj() @ op @ Vn for op in operators], axis=1)
+        couplings = _couplings(gid, np.sqrt(np.maximum(g, 0.0)), ops.reshape(at.size, -1, d * d))
+        for j, S in zip(points, couplings, strict=True):
+            out[j] = S
     return out
 
 
