@@ -61,7 +61,6 @@ __all__ = [
     "bohr_groups",
     "eigen_decomposition",
     "group_levels",
-    "pair_pairs",
 ]
 
 #: Levels (and Bohr frequencies) closer than this times max(1, max|E|) are merged.
@@ -232,12 +231,6 @@ def group_levels(energies: NDArray[np.float64], tol: float) -> NDArray[np.float6
     out = np.empty_like(levels)
     out[order] = levels
     return out
-
-
-def pair_pairs(gid: NDArray[np.int64]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
-    """All ordered pairs (p, q) of flat indices of ``gid`` with the same group label."""
-    p, q, _ = _pair_pairs(gid, gid.size)
-    return p, q
 
 
 def bohr_groups(
