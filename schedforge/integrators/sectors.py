@@ -39,7 +39,9 @@ from ..davies import bohr_groups, group_levels
 from .frame import EigenframeModel, FrameData, frame_tol
 
 __all__ = [
+    "CouplingPattern",
     "FactoredCoupling",
+    "LaidOutCoupling",
     "apply_sector",
     "as_matrices",
     "propagate_sector_modes",
@@ -72,7 +74,7 @@ def sector_coupling(
     operators: list[NDArray[Any]],
     gamma: Any,
     tol: float,
-) -> sparse.csr_matrix | None:
+) -> LaidOutCoupling | FactoredCoupling | None:
     """The Davies terms between distinct elements of one Bohr sector, at one point s.
 
     Parameters
@@ -91,9 +93,10 @@ def sector_coupling(
 
     Returns
     -------
-    scipy.sparse.csr_matrix (d^2, d^2) or None
-        ``S`` with ``(S vec(rho))[a d + b]`` the rate (rad/ns) at which the other
-        elements of rho's sector feed rho_ab (row-major ``vec``); the diagonal and
+    LaidOutCoupling, FactoredCoupling or None
+        A (d^2, d^2) operator ``S`` (``S @ vec``, ``S.toarray()``) with
+        ``(S vec(rho))[a d + b]`` the rate (rad/ns) at which the other elements of
+        rho's sector feed rho_ab (row-major ``vec``); the diagonal and
         the population-to-population entries (already in the Pauli rates) are left
         out.  None when no two elements share a sector (distinct levels and Bohr
         frequencies), the case the eigenframe handles without it.
@@ -107,7 +110,7 @@ def sector_coupling_batch(
     operators: list[NDArray[Any]],
     gamma: Any,
     tol: float,
-) -> list[sparse.csr_matrix | None]:
+) -> list[Any]:
     """:func:`sector_coupling` at n points at once (``E`` (n, d), ``V`` (n, d, d)).
 
     Points with the same grouping of Bohr frequencies (a step's nodes, as a rule)
@@ -277,10 +280,11 @@ class _SectorStructure:
             (factor, (source[keep], slot)), shape=(p.size + k_pos.size, entries.size)
         )
         self.D = D
+        self.pattern = CouplingPattern(self.indices, self.indptr, D)
 
     def matrices(
         self, sqrt_g: NDArray[np.float64], ops: NDArray[np.complex128]
-    ) -> list[sparse.csr_matrix | None]:
+    ) -> list[LaidOutCoupling | None]:
         """The couplings at each point from its sqrt(gamma) (n, d^2) and operators."""
         n = sqrt_g.shape[0]
         if not self.indices.size:
@@ -294,14 +298,70 @@ class _SectorStructure:
         weight = np.concatenate(parts, axis=1)
         kconj = (self.k_sum.T @ weight[:, self.same].T).T.conj()  # (n, K entries)
         data = (self.to_csr.T @ np.concatenate([weight, kconj], axis=1).T).T
-        out: list[sparse.csr_matrix | None] = []
-        for row in data:
-            S = sparse.csr_matrix(
-                (row, self.indices.copy(), self.indptr.copy()), shape=(self.D, self.D)
-            )
-            S.eliminate_zeros()
-            out.append(S if S.nnz else None)
+        return [LaidOutCoupling(row, self.pattern) if row.any() else None for row in data]
+
+
+class CouplingPattern:
+    """The CSR pattern of one grouping's couplings, shared by the points that have it.
+
+    Applying the couplings of several points is one gather, one product and one
+    segmented sum (``numpy.add.reduceat`` over the rows' entries) for all of them,
+    instead of a sparse matrix per point: on small problems (d = 8 to 16) building
+    and applying scipy.sparse matrices per node cost more than the arithmetic.
+    """
+
+    def __init__(self, indices: NDArray[np.int32], indptr: NDArray[np.int32], D: int) -> None:
+        self.indices, self.indptr, self.D = indices, indptr, D
+        self.rows = np.flatnonzero(np.diff(indptr))  # rows with entries
+        self.starts = indptr[self.rows]
+
+    def apply(self, data: NDArray[np.complex128], vecs: NDArray[Any]) -> NDArray[np.complex128]:
+        """Each point's couplings (``data`` (n, nnz)) applied to its vector (n, D)."""
+        out = np.zeros((data.shape[0], self.D), dtype=np.result_type(data, vecs))
+        if self.rows.size:
+            out[:, self.rows] = np.add.reduceat(data * vecs[:, self.indices], self.starts, axis=1)
         return out
+
+
+class LaidOutCoupling:
+    """One point's sector coupling: its entries in the pattern of its grouping.
+
+    Acts as a (d^2, d^2) matrix: ``S @ vec``, ``S.toarray()``; ``tocsr()``,
+    ``abs(S)`` and ``c * S`` give scipy.sparse matrices.
+    """
+
+    __slots__ = ("data", "pattern")
+    __array_ufunc__ = None  # numpy scalars times S defer to __rmul__
+
+    def __init__(self, data: NDArray[np.complex128], pattern: CouplingPattern) -> None:
+        self.data, self.pattern = data, pattern
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(d^2, d^2)."""
+        return (self.pattern.D, self.pattern.D)
+
+    def tocsr(self) -> sparse.csr_matrix:
+        """As a scipy.sparse CSR matrix (its own copy)."""
+        pat = self.pattern
+        return sparse.csr_matrix(
+            (self.data.copy(), pat.indices.copy(), pat.indptr.copy()), shape=self.shape
+        )
+
+    def toarray(self) -> NDArray[np.complex128]:
+        """As a dense array."""
+        return self.tocsr().toarray()
+
+    def __matmul__(self, vec: NDArray[Any]) -> NDArray[np.complex128]:
+        return self.pattern.apply(self.data[None], np.asarray(vec)[None])[0]
+
+    def __abs__(self) -> sparse.csr_matrix:
+        return abs(self.tocsr())
+
+    def __mul__(self, factor: complex) -> sparse.csr_matrix:
+        return self.tocsr() * factor
+
+    __rmul__ = __mul__
 
 
 class FactoredCoupling:
@@ -325,7 +385,7 @@ class FactoredCoupling:
         members: list[NDArray[np.int64]],
         sqrt_g: NDArray[np.float64],
         ops: NDArray[np.complex128],
-        rest: sparse.csr_matrix | None = None,
+        rest: LaidOutCoupling | None = None,
     ) -> None:
         d = gid.shape[0]
         self.d, self.gid, self.sqrt_g, self.ops, self.rest = d, gid, sqrt_g, ops, rest
@@ -483,9 +543,15 @@ def apply_sector(sector: list[Any], rho: NDArray[np.complex128]) -> NDArray[np.c
     n, d = rho.shape[0], rho.shape[1]
     out = np.zeros((n, d * d), dtype=complex)
     flat = rho.reshape(n, d * d)
+    shared: dict[int, list[int]] = {}  # points laid out in one pattern: together
     for j, S in enumerate(sector):
-        if S is not None:
+        if isinstance(S, LaidOutCoupling):
+            shared.setdefault(id(S.pattern), []).append(j)
+        elif S is not None:
             out[j] = S @ flat[j]
+    for points in shared.values():
+        data = np.stack([sector[j].data for j in points])
+        out[points] = sector[points[0]].pattern.apply(data, flat[points])
     return out.reshape(rho.shape)
 
 
