@@ -30,7 +30,7 @@ from schedforge.dynamics import simulate
 from schedforge.integrators import crossings, frame, slow_step, stepper
 from schedforge.integrators import eigenframe as ef
 from schedforge.integrators.collocation import collocation_scheme, lagrange_weights
-from schedforge.integrators.free_modes import expm_stack
+from schedforge.integrators.free_modes import expm_stack, join_sector_modes
 from schedforge.schedules import make_schedule
 from schedforge.spec import load_spec
 from schedforge.spec_model import ProblemSpec
@@ -246,10 +246,34 @@ def test_undressed_free_mode_estimate_bounds_the_error(monkeypatch, problem, tf,
     assert estimate <= 1e3 * error  # and the estimate is not vacuous
 
 
-@pytest.mark.parametrize("n", [2, 3, 5, 7, 12])
+def test_clusters_take_in_their_sector_partners(monkeypatch: pytest.MonkeyPatch) -> None:
+    # a cluster {(0,1), (0,2)} whose member (0,1) a Bohr sector ties to (2,3): the three
+    # are propagated together (end to end: test_sparse_reference.py, the parting
+    # ladder); an untied free mode (1,3) and a tie between modes outside any cluster
+    # ((1,0) with (3,2)) are left alone, and a group above CLUSTER_MAX_SIZE keeps the
+    # cluster as it was
+    from schedforge.integrators import free_modes
+
+    d = 4
+    labels = -np.ones((d, d), dtype=np.int64)
+    labels[0, 1] = labels[0, 2] = 7
+    free = ~np.eye(d, dtype=bool)
+    C = np.zeros((d * d, d * d))
+    C[0 * d + 1, 2 * d + 3] = C[2 * d + 3, 0 * d + 1] = 0.3
+    C[1 * d + 0, 3 * d + 2] = 0.2
+    joined = join_sector_modes(labels, [None, C, None], free)
+    assert joined[0, 1] == joined[0, 2] == joined[2, 3] >= 0
+    assert joined[1, 3] == joined[1, 0] == joined[3, 2] == -1
+    monkeypatch.setattr(free_modes, "CLUSTER_MAX_SIZE", 2)
+    kept = free_modes.join_sector_modes(labels, [None, C, None], free)
+    assert np.array_equal(kept, labels)
+
+
+@pytest.mark.parametrize("n", [2, 3, 5, 7, 12, 15, 24])
 def test_stacked_matrix_exponentials_match_scipy(n: int) -> None:
-    # closed form (2 x 2), stacked Taylor scaling and squaring (up to EXPM_TAYLOR_SIZE)
-    # and scipy's own expm above, against scipy.linalg.expm one matrix at a time
+    # closed form (2 x 2) and stacked Taylor scaling and squaring with the
+    # Paterson-Stockmeyer polynomial (up to EXPM_TAYLOR_SIZE, every cluster size),
+    # against scipy.linalg.expm one matrix at a time
     rng = np.random.default_rng(n)
     size = rng.uniform(1e-9, 3.0, (200, 1, 1))
     M = (rng.normal(size=(200, n, n)) + 1j * rng.normal(size=(200, n, n))) * size

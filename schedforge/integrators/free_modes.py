@@ -21,9 +21,11 @@ Arrays are in the eigenbasis; rates per unit x = t / tf (scaled by tf).
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy import sparse
 from scipy.linalg import expm
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
@@ -41,6 +43,7 @@ __all__ = [
     "coupling_ratios",
     "expm_stack",
     "intra_cluster",
+    "join_sector_modes",
     "perturbation_ratios",
     "propagate_clusters",
     "resonant_clusters",
@@ -51,22 +54,21 @@ __all__ = [
 #: Largest perturbation ratio |S| / |tf (lambda_ab - lambda_m)| for which free modes
 #: are dressed; coherences coupled more strongly to a partner of similar frequency
 #: are propagated with it (a cluster).  What the dressing leaves out, eps^2 times the
-#: amplitude, counts in the free-mode error estimate.  Measured 2026-12-03 (tf = 1e3
-#: ns, k_end 1; relative trace-norm difference from the general integrator at rtol
-#: 1e-12), 1e-4 -> 3e-4 -> 1e-3: uniform 4-ring 4.2 -> 2.2 -> 2.5 cpu s, 3.2e-8 ->
-#: 1.7e-8 -> 2.6e-8; 4-star 4.6 -> 3.7 -> 3.1 s, 1.08e-6 -> 1.13e-6 -> 1.9e-6; random
-#: 4-chain 5.1 -> 4.6 -> 4.2 s, 7.9e-8 -> 1.2e-7 -> 1.5e-7.  Below 3e-4 the clusters
-#: held modes detuned thousands of times their coupling, whose Magnus substeps
-#: followed the detuning; at 1e-3 the star's agreement suffers.
-RESONANCE_RATIO = 3.0e-4
+#: amplitude, counts in the free-mode error estimate.  Larger values were tried
+#: (2026-12-03, tf = 1e3 ns, against the general integrator at rtol 1e-12): 3e-4 made
+#: the uniform 4-ring 1.5x faster but the fully connected 3-qubit instance 1.5-2x
+#: slower (the clusters then stay under ``CLUSTER_MAX_SIZE`` instead of being split at
+#: a raised threshold, and hold modes detuned thousands of times their coupling, whose
+#: Magnus substeps follow the detuning); the cost moves erratically with the value.
+RESONANCE_RATIO = 1.0e-4
 #: Largest threshold tried when clusters at ``RESONANCE_RATIO`` are too large.
 RESONANCE_RATIO_MAX = 1.0e-1
 #: Denominators below this fraction of the largest rate count as exact resonances.
 RESONANT_RTOL = 1e-12
 #: Largest cluster of free modes propagated jointly.
 CLUSTER_MAX_SIZE = 24
-#: Clusters up to this size are exponentiated by scaling and squaring, larger ones
-#: through their eigen-decomposition (faster there).
+#: Matrices up to this size that the Taylor method does not take go to
+#: ``scipy.linalg.expm``, larger ones through their eigen-decomposition.
 EXPM_EIG_SIZE = 24
 #: Largest work (substeps x cluster size^3) spent on one cluster of nearly resonant
 #: free modes in one step; beyond it the cluster is left undressed and its amplitude
@@ -74,12 +76,20 @@ EXPM_EIG_SIZE = 24
 CLUSTER_WORK_LIMIT = 2.0e6
 #: Degree of the Taylor polynomial in the stacked matrix exponential (norm <= 1/2).
 TAYLOR_DEGREE = 14
-#: Largest matrices exponentiated by the stacked Taylor method: 1.7-2x faster than
-#: scipy's loop over the stack up to 5 x 5, even at 8 x 8, slower at 12 x 12 (measured
-#: 2026-12-01).  Remeasured 2026-12-03 on stacks like those of the uniform 4-ring's
-#: clusters (norm about 1, 500-4900 matrices): 1.9x faster at 9 x 9, 1.2x at 12 x 12,
-#: even at 16 x 16; the clusters' substeps keep the norm below 1/2, so no squaring.
-EXPM_TAYLOR_SIZE = 12
+#: The Taylor coefficients 1 / k! in blocks of four (Paterson-Stockmeyer), zero beyond
+#: ``TAYLOR_DEGREE``.
+_PS_COEFFICIENTS = np.array(
+    [
+        [1.0 / math.factorial(4 * j + i) if 4 * j + i <= TAYLOR_DEGREE else 0.0 for i in range(4)]
+        for j in range(TAYLOR_DEGREE // 4 + 1)
+    ]
+)
+#: Largest matrices exponentiated by the stacked Taylor method.  With the
+#: Paterson-Stockmeyer evaluation (measured 2026-12-03, best of 5, stacks of 1000 with
+#: norm 1/2, as the clusters' substeps keep them, so no squaring) it is faster than
+#: scipy's loop over the stack at every cluster size: 4.9x at 12 x 12, 2.1x at 15,
+#: 1.7x at 16, 2.2x at 20, 4.6x at 24 (with plain Horner it lost from 12 x 12 on).
+EXPM_TAYLOR_SIZE = 24
 #: Fixed cost of one small matrix exponential in the same units (flops of n^3), for
 #: the work limit: for tiny clusters the per-matrix overhead dominates.
 EXPM_OVERHEAD = 500
@@ -251,6 +261,25 @@ def _expm_2x2(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
     return np.exp(t)[..., None, None] * out
 
 
+def _taylor_polynomial(X: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    """``sum_(k <= TAYLOR_DEGREE) X^k / k!`` for a stack, by Paterson & Stockmeyer.
+
+    The polynomial in blocks of four powers, Horner in ``X^4`` (Paterson & Stockmeyer,
+    SIAM J. Comput. 2, 60, 1973): six stacked products for degree 14 instead of the
+    fourteen of plain Horner.
+    """
+    X2 = X @ X
+    X3 = X2 @ X
+    powers = np.stack([np.broadcast_to(np.eye(X.shape[-1]), X.shape), X, X2, X3])
+    # blocks[j] = sum_i X^i / (4 j + i)!, all at once
+    blocks = np.tensordot(_PS_COEFFICIENTS, powers, axes=(1, 0))
+    X4 = X3 @ X
+    out = blocks[-1]
+    for block in blocks[-2::-1]:
+        out = block + X4 @ out
+    return out.astype(complex, copy=False)
+
+
 def _expm_taylor(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
     """Exponentials of a stack of small matrices by scaling and squaring (Taylor).
 
@@ -260,15 +289,11 @@ def _expm_taylor(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
     method 3).  Every operation is a stacked matmul, so the whole stack costs a few
     dozen NumPy calls (``scipy.linalg.expm`` loops over a stack in Python).
     """
-    n = omega.shape[-1]
     norm = np.max(np.sum(np.abs(omega), axis=-1), axis=-1)
     with np.errstate(divide="ignore"):
         s = np.maximum(0, np.ceil(np.log2(norm / 0.5))).astype(int)
     X = omega * (0.5**s)[..., None, None]
-    eye = np.eye(n)
-    E = np.broadcast_to(eye, omega.shape).astype(complex)
-    for k in range(TAYLOR_DEGREE, 0, -1):  # Horner: I + X (I + X/2 (I + X/3 (...)))
-        E = eye + (X @ E) / k
+    E = _taylor_polynomial(X)
     for j in range(int(s.max(initial=0))):
         more = s > j
         E[more] = E[more] @ E[more]
@@ -312,6 +337,76 @@ def _ordered_product(props: NDArray[np.complex128]) -> NDArray[np.complex128]:
     return props[:, 0]
 
 
+def _extra_blocks(extra: list[Any], flat: NDArray[np.int64]) -> NDArray[np.complex128]:
+    """The blocks of per-node couplings between each cluster's members: (G, nodes, n, n).
+
+    ``flat`` (G, n) holds the members' flat indices ``a d + b``; entry [g, j, p, q] is
+    how member q of cluster g feeds member p at node j (off the diagonal only: the
+    diagonal is the modes' own rate).
+    """
+    G, n = flat.shape
+    out = np.zeros((G, len(extra), n, n), dtype=complex)
+    rows = flat[:, :, None]
+    cols = flat[:, None, :]
+    for j, C in enumerate(extra):
+        if C is None:
+            continue
+        if sparse.issparse(C):
+            used = np.unique(flat)
+            pos = np.searchsorted(used, flat)
+            sub = C[used][:, used].toarray()
+            out[:, j] = sub[pos[:, :, None], pos[:, None, :]]
+        else:
+            out[:, j] = C[rows, cols]
+    out[:, :, np.arange(n), np.arange(n)] = 0.0
+    return out
+
+
+def join_sector_modes(
+    labels: NDArray[np.int64], coupling: list[Any], free: NDArray[np.bool_]
+) -> NDArray[np.int64]:
+    """Clusters joined with the free modes that Bohr-sector couplings tie to them.
+
+    A mode can be a member of a near-resonant cluster (coupled to its partners by the
+    frame's rotation, with a detuning that changes along the step) and of a Bohr
+    sector (coupled to other modes of its frequency by the Davies terms).  Propagated
+    apart, one treatment overrode the other and dropped its coupling: on the fully
+    connected 2-qubit instance at 1e3 ns (levels 1 and 2 parting near s = 0, where
+    the driver's ladder makes Bohr frequencies coincide) that left 1e-4 of the state
+    (2.5e-8 in trace norm) against an estimate of 8e-13.  Returns labels (d, d) in
+    which each cluster takes in the modes its members are sector-coupled to
+    (transitively), as long as the result has at most ``CLUSTER_MAX_SIZE`` members;
+    larger groups keep the cluster as it was (their sector couplings are then left to
+    :func:`.sectors.propagate_sector_modes` for the modes outside clusters).
+    """
+    d = labels.shape[0]
+    idx = np.flatnonzero(free.ravel())
+    links = [C for C in coupling if C is not None]
+    if not links or idx.size < 2:
+        return labels
+    total = sum(
+        abs(C[idx][:, idx]) if sparse.issparse(C) else np.abs(C[np.ix_(idx, idx)]) for C in links
+    )
+    flat_labels = labels.ravel()[idx]
+    clustered = np.flatnonzero(flat_labels >= 0)
+    # edges: sector couplings among free modes, and each cluster member to its cluster
+    graph = sparse.coo_matrix(total)
+    rows = np.concatenate([graph.row, clustered])
+    first = {}
+    for k in clustered:
+        first.setdefault(int(flat_labels[k]), int(k))
+    cols = np.concatenate([graph.col, [first[int(flat_labels[k])] for k in clustered]])
+    adj = sparse.coo_matrix((np.ones(rows.size), (rows, cols)), shape=(idx.size, idx.size))
+    _, comp = connected_components(adj, directed=False)
+    out = labels.copy().ravel()
+    sizes = np.bincount(comp)
+    for c in np.unique(comp[clustered]):
+        members = np.flatnonzero(comp == c)
+        if 2 <= sizes[c] <= CLUSTER_MAX_SIZE:
+            out[idx[members]] = d * d + c  # a label no cluster uses
+    return out.reshape(d, d)
+
+
 def propagate_clusters(
     A: NDArray[np.complex128],
     labels: NDArray[np.int64],
@@ -320,11 +415,15 @@ def propagate_clusters(
     fp: NDArray[np.float64],
     scheme: CollocationScheme,
     h: float,
+    extra: list[Any] | None = None,
 ) -> tuple[NDArray[np.complex128], NDArray[np.bool_]]:
     """Propagate the free modes of each near-resonant cluster jointly over one step.
 
     Within a cluster, dA/dx = M(x) A with M = diag(rate) plus the direct frame-
-    rotation couplings S between members; the common mean of the diagonal is
+    rotation couplings S between members, plus ``extra`` (per node a (d^2, d^2)
+    dense or sparse matrix on the row-major vector of rho, or None: the Bohr-sector
+    couplings of :func:`.sectors.resonant_coupling` without its rotation, when a
+    cluster holds modes of a sector); the common mean of the diagonal is
     integrated exactly and the remainder by a fourth-order Magnus method on the
     Lagrange interpolant of the node values, with substeps keeping |R dx| <= 0.5.
     Clusters that would cost more than ``CLUSTER_WORK_LIMIT`` are left as they are
@@ -354,6 +453,8 @@ def propagate_clusters(
         Kb = np.moveaxis(K[:, mb[:, None, :], mb[:, :, None]], 0, 1)
         M = np.where(same_b & ~same_a, -f * Ka, 0.0) + np.where(same_a & ~same_b, f * Kb, 0.0)
         M = M.astype(complex)
+        if extra is not None:
+            M += _extra_blocks(extra, ma * d + mb)
         M[:, :, np.arange(n), np.arange(n)] = np.moveaxis(rate[:, ma, mb], 0, 1)
         mean = np.trace(M, axis1=2, axis2=3) / n  # (G, nodes)
         R = M - mean[:, :, None, None] * np.eye(n)

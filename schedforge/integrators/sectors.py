@@ -569,13 +569,14 @@ def sector_couplings(model: EigenframeModel, fr: FrameData, tol: float) -> list[
 
 
 def resonant_coupling(
-    sector: list[Any], fr: FrameData, fp: NDArray[np.float64], tf: float
+    sector: list[Any], fr: FrameData, fp: NDArray[np.float64], tf: float, rotation: bool = True
 ) -> list[Any]:
     """Per node, the couplings between free modes that do not oscillate (per unit x).
 
-    ``tf`` times the sector coupling, plus the frame's rotation ``-f' [K, .]`` inside
-    degenerate levels (the transported frame turns there, and the modes it couples
-    share their frequency exactly).  Dense arrays up to ``DENSE_MODES_MAX`` elements of
+    ``tf`` times the sector coupling, plus (``rotation``) the frame's rotation
+    ``-f' [K, .]`` inside degenerate levels (the transported frame turns there, and the
+    modes it couples share their frequency exactly; :func:`.free_modes.propagate_clusters`
+    takes the rotation from ``K`` itself).  Dense arrays up to ``DENSE_MODES_MAX`` elements of
     rho (sparse matrices cost more than their products there: the triangle at 1e5 ns
     spent half its time in scipy.sparse's overhead on 64 x 64 matrices), else sparse.
     """
@@ -589,7 +590,7 @@ def resonant_coupling(
         C: Any = None
         if S is not None:
             C = tf * (S.toarray() if dense else S)
-        if inside.any():
+        if rotation and inside.any():
             K = np.where(inside, fr.K[j], 0.0)
             if dense:  # -(K (x) I - I (x) K^T), as rotation_superoperator lays it out
                 eye = np.eye(d)

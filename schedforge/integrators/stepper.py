@@ -40,6 +40,7 @@ from .crossings import (
 )
 from .frame import EigenframeModel, FrameData, opening_levels, transported
 from .free_modes import (
+    join_sector_modes,
     perturbation_ratios,
     propagate_clusters,
     resonant_clusters,
@@ -612,25 +613,29 @@ class EigenframeStepper:
         growth = h * np.einsum("j,jab->ab", scheme.w, rate)
         undressed = 0.0
         A_single = np.where(free, A_start * np.exp(growth), 0.0)
+        coupling = extra = None
+        if sector is not None and matter:
+            sector = as_matrices(sector)
+            coupling = resonant_coupling(sector, fr, fd[1], self.tf)
+            if labels is not None:  # clusters take in their members' sector partners
+                labels = join_sector_modes(labels, coupling, free)
+                extra = resonant_coupling(sector, fr, fd[1], self.tf, rotation=False)
+        in_cluster = np.zeros((d, d), dtype=bool)
         if labels is not None and matter:
             in_cluster = labels >= 0
             A_cl, skipped = propagate_clusters(
-                np.where(free, A_start, 0.0), labels, rate, fr.K, fd[1], scheme, h
+                np.where(free, A_start, 0.0), labels, rate, fr.K, fd[1], scheme, h, extra
             )
             A_single = np.where(in_cluster & ~skipped, A_cl, A_single)
             if skipped.any():
                 undressed = max(undressed, float(np.max(np.abs(A_single[skipped]))))
             self.stats["clustered_steps"] = self.stats.get("clustered_steps", 0) + 1
-        if sector is not None and matter:
-            # modes of one Bohr sector feed each other without oscillation: together
-            sector = as_matrices(sector)
+        if coupling is not None:
+            # modes of one Bohr sector outside clusters feed each other without
+            # oscillation: together
+            rest = free & ~in_cluster
             A_sec, in_sector = propagate_sector_modes(
-                np.where(free, A_start, 0.0),
-                free,
-                rate,
-                resonant_coupling(sector, fr, fd[1], self.tf),
-                h,
-                scheme.w,
+                np.where(rest, A_start, 0.0), rest, rate, coupling, h, scheme.w
             )
             A_single = np.where(in_sector, A_sec, A_single)
             if in_sector.any():
