@@ -203,6 +203,7 @@ def resonant_clusters(
     fp: NDArray[np.float64],
     lam: NDArray[np.complex128],
     candidates: NDArray[np.bool_],
+    h: float | None = None,
 ) -> NDArray[np.int64]:
     """Group free modes coupled with a ratio above a threshold into clusters.
 
@@ -213,7 +214,11 @@ def resonant_clusters(
     ``RESONANCE_RATIO`` and is raised tenfold (up to ``RESONANCE_RATIO_MAX``) while
     the largest cluster has more than ``CLUSTER_MAX_SIZE`` members: a dense spectrum
     (several qubits) would otherwise join most modes into one cluster too large to
-    propagate.  The coupling left between clusters counts in the error estimate.
+    propagate.  With the step length ``h``, also while a cluster would cost more than
+    ``CLUSTER_WORK_LIMIT`` over the step (:func:`propagate_clusters` leaves such a
+    cluster out, and with it the couplings of its closely tied members; weak links
+    to far-detuned modes, which set the substeps, go first when the threshold rises).
+    The coupling left between clusters counts in the error estimate.
     """
     d = K.shape[-1]
     _, _, ratio1, _, _, ratio2 = coupling_ratios(K, fp, lam)
@@ -234,12 +239,36 @@ def resonant_clusters(
         _, comp = connected_components(graph, directed=False)
         comp = comp.reshape(d, d)
         sizes = np.bincount(comp[candidates], minlength=comp.max() + 1)
-        if sizes.max() <= CLUSTER_MAX_SIZE or threshold >= RESONANCE_RATIO_MAX:
+        fits = sizes.max() <= CLUSTER_MAX_SIZE and not _too_costly(comp, sizes, lam, h)
+        if fits or threshold >= RESONANCE_RATIO_MAX:
             member = candidates & (sizes[comp] > 1) & (sizes[comp] <= CLUSTER_MAX_SIZE)
             labels[member] = comp[member]
             break
         threshold *= 10.0
     return labels
+
+
+def _too_costly(
+    comp: NDArray[np.int64],
+    sizes: NDArray[np.int64],
+    lam: NDArray[np.complex128],
+    h: float | None,
+) -> bool:
+    """Whether some cluster of ``comp`` would exceed ``CLUSTER_WORK_LIMIT`` over a step h.
+
+    The substeps of :func:`propagate_clusters` follow the spread of the members' rates
+    about their mean (its diagonal part, a lower bound of the norm it uses).
+    """
+    if h is None:
+        return False
+    for c in np.flatnonzero(sizes > 1):
+        a, b = np.nonzero(comp == c)
+        rates = lam[:, a, b]  # (nodes, members)
+        spread = float(np.max(np.abs(rates - rates.mean(axis=1, keepdims=True))))
+        n_sub = max(1, math.ceil(h * spread / 0.5))
+        if n_sub * (a.size**3 + EXPM_OVERHEAD) > CLUSTER_WORK_LIMIT:
+            return True
+    return False
 
 
 def _expm_2x2(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
