@@ -259,16 +259,24 @@ def _too_costly(
     The substeps of :func:`propagate_clusters` follow the spread of the members' rates
     about their mean (its diagonal part, a lower bound of the norm it uses).
     """
-    if h is None:
+    if h is None or not np.any(sizes > 1):
         return False
-    for c in np.flatnonzero(sizes > 1):
-        a, b = np.nonzero(comp == c)
-        rates = lam[:, a, b]  # (nodes, members)
-        spread = float(np.max(np.abs(rates - rates.mean(axis=1, keepdims=True))))
-        n_sub = max(1, math.ceil(h * spread / 0.5))
-        if n_sub * (a.size**3 + EXPM_OVERHEAD) > CLUSTER_WORK_LIMIT:
-            return True
-    return False
+    a, b = np.nonzero(sizes[comp] > 1)
+    c = comp[a, b]
+    rates = lam[:, a, b]  # (nodes, members of clusters)
+    count = np.bincount(c, minlength=sizes.size)
+    mean = np.stack(
+        [
+            np.bincount(c, weights=r.real, minlength=sizes.size)
+            + 1j * np.bincount(c, weights=r.imag, minlength=sizes.size)
+            for r in rates
+        ]
+    ) / np.maximum(count, 1)
+    spread = np.zeros(sizes.size)
+    np.maximum.at(spread, c, np.max(np.abs(rates - mean[:, c]), axis=0))
+    n_sub = np.maximum(1, np.ceil(h * spread / 0.5))
+    work = n_sub * (count.astype(float) ** 3 + EXPM_OVERHEAD)
+    return bool(np.any(work[count > 1] > CLUSTER_WORK_LIMIT))
 
 
 def _expm_2x2(omega: NDArray[np.complex128]) -> NDArray[np.complex128]:
