@@ -11,6 +11,7 @@ Chromium at 1440 and 1024 px (see the issue-15 note).
 from __future__ import annotations
 
 import csv
+import itertools
 import math
 import re
 import warnings
@@ -110,3 +111,26 @@ def test_local_slopes_legend_lists_only_drawn_lines(k) -> None:
     fig = plot_local_slopes(fits)
     labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
     assert labels == [f"beta k_end={k}"]
+
+
+@pytest.mark.parametrize("span", [(3e3, 5e4), (1e2, 1e3), (1e1, 1e5)])
+def test_tf_axis_labels_do_not_run_into_each_other(span) -> None:
+    # a sweep from 3e3 to 5e4 ns had matplotlib label 2, 3, 4 and 6 x 10^n on a panel
+    # 5 inches wide, where they overlapped; the labels drawn must keep apart, and the
+    # axis must still carry at least two of them
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fits = fit_points(_rows(np.geomspace(*span, 5)), atol=1e-14)
+    for fig in (plot_error_vs_tf(fits[0]), plot_local_slopes(fits)):
+        ax = fig.axes[0]
+        renderer = FigureCanvasAgg(fig).get_renderer()
+        fig.draw(renderer)
+        lo, hi = ax.get_xlim()
+        boxes = [
+            t.get_window_extent(renderer)
+            for t in ax.get_xticklabels(minor=False) + ax.get_xticklabels(minor=True)
+            if t.get_text() and t.get_visible() and lo <= t.get_position()[0] <= hi
+        ]
+        assert len(boxes) >= 2, span
+        boxes.sort(key=lambda b: b.x0)
+        assert all(a.x1 <= b.x0 for a, b in itertools.pairwise(boxes)), span

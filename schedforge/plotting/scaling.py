@@ -13,6 +13,7 @@ from collections.abc import Sequence
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter, NullFormatter
 from numpy.typing import ArrayLike
 
 from ..analysis import ScalingFit
@@ -59,6 +60,28 @@ def _data_limits(values: ArrayLike, margin: float = 3.0) -> tuple[float, float] 
     if not v.size:
         return None
     return float(v.min()) / margin, float(v.max()) * margin
+
+
+def _tidy_log_x(ax: Axes) -> None:
+    """Labels of a log x axis that spans a decade or more: decades, and 2 and 5 x 10^n.
+
+    Matplotlib labels the minor ticks 2, 3, 4 and 6 x 10^n up to about two decades,
+    and on a panel 5 inches wide they ran into each other (a sweep from 3e3 to 5e4
+    ns).  Beyond three decades only the decades are labelled; the grid shows the rest.
+    """
+    lo, hi = ax.get_xlim()
+    if lo <= 0 or hi / lo < 10.0:
+        return
+    if hi / lo >= 1000.0:
+        ax.xaxis.set_minor_formatter(NullFormatter())
+        return
+
+    def label(x: float, _pos: int) -> str:
+        exponent = math.floor(math.log10(x) + 1e-9)
+        mantissa = round(x / 10.0**exponent)
+        return rf"${mantissa}\times10^{{{exponent}}}$" if mantissa in (2, 5) else ""
+
+    ax.xaxis.set_minor_formatter(FuncFormatter(label))
 
 
 def _legend_below(ax: Axes, ncol: int = 2) -> None:
@@ -145,6 +168,7 @@ def plot_error_vs_tf(fit: ScalingFit, ax: Axes | None = None) -> Figure:
     t_lim = _data_limits(tf, margin=1.5)
     if t_lim is not None:
         ax.set_xlim(*t_lim)
+    _tidy_log_x(ax)
     ax.set_xlabel("tf (ns)")
     known = METRICS.get(fit.metric)
     ax.set_ylabel(known.heading if known else fit.metric.replace("_", " "))
@@ -175,6 +199,8 @@ def plot_local_slopes(fits: Sequence[ScalingFit], ax: Axes | None = None) -> Fig
         if math.isfinite(fit.expected_slope):
             ax.axhline(fit.expected_slope, color=color, linestyle="--", linewidth=0.8)
         drawn += 1
+    if drawn:
+        _tidy_log_x(ax)
     ax.set_xlabel("tf (ns)")
     ax.set_ylabel("local slope d log(err) / d log(tf)")
     ax.grid(alpha=0.3, which="both")
