@@ -67,12 +67,12 @@ def _tidy_log_x(ax: Axes) -> None:
 
     Matplotlib labels the minor ticks 2, 3, 4 and 6 x 10^n up to about two decades,
     and on a panel 5 inches wide they ran into each other (a sweep from 3e3 to 5e4
-    ns).  Beyond three decades only the decades are labelled; the grid shows the rest.
+    ns).  Beyond two decades only the decades are labelled; the grid shows the rest.
     """
     lo, hi = ax.get_xlim()
     if lo <= 0 or hi / lo < 10.0:
         return
-    if hi / lo >= 1000.0:
+    if hi / lo >= 100.0:
         ax.xaxis.set_minor_formatter(NullFormatter())
         return
 
