@@ -507,6 +507,7 @@ def fit_scaling(
     noise: float | None = None,
     dynamics: str = OPEN,
     time_scale_ns: float = math.nan,
+    coefficient_parted: float = math.nan,
 ) -> ScalingFit:
     """Detect the asymptotic regime of one schedule's points and fit it.
 
@@ -542,6 +543,10 @@ def fit_scaling(
         1/gap (ns) that tf must be long against (:func:`schedforge.error_law.law_time_scale_ns`);
         points below ``RELAXATION_FACTOR`` times it are never in the regime.  nan:
         not checked (the message says so).
+    coefficient_parted : float
+        The coefficient that anneals short of a crossover show where levels coinciding
+        at s = 1 part just before it (``Prediction.coefficient_parted``); a fit that
+        matches it instead of ``coefficient_predicted`` says so.  nan: none.
 
     Returns
     -------
@@ -696,6 +701,15 @@ def fit_scaling(
     )
     if math.isfinite(pred) and pred > 0:
         ratio = coeff / pred
+        parted = coeff / coefficient_parted if coefficient_parted > 0 else math.nan
+        if not abs(ratio - 1.0) <= COEFFICIENT_RTOL and abs(parted - 1.0) <= COEFFICIENT_RTOL:
+            return not_reached(
+                f"the slope matches over {span} ({slope:.3f}) and the fitted coefficient is "
+                f"{parted:.3g} x the one of the generator just before the end, where levels "
+                f"that coincide at s = 1 have parted ({coefficient_parted:.4g}); L(1)'s "
+                f"coefficient ({pred:.4g}), the asymptotic one, needs longer anneals: "
+                f"{_suggest_tf(max(float(tf[regime[-1]]), tf_law_min))}"
+            )
         if not abs(ratio - 1.0) <= COEFFICIENT_RTOL:
             return not_reached(
                 f"the slope matches over {span} ({slope:.3f}), but the fitted coefficient "
@@ -729,6 +743,7 @@ def fit_points(
     predicted: Mapping[tuple[str, float, float], float] | None = None,
     dynamics: str = OPEN,
     time_scale_ns: float = math.nan,
+    predicted_parted: Mapping[tuple[str, float, float], float] | None = None,
 ) -> list[ScalingFit]:
     """Fit every schedule of a sweep.
 
@@ -748,6 +763,9 @@ def fit_points(
         distance) only (a realized waveform is not flat as designed).
     dynamics, time_scale_ns
         The law and the time scale (see :func:`fit_scaling`).
+    predicted_parted : mapping, optional
+        ``Prediction.coefficient_parted`` by the same key, carried like ``predicted``
+        (see ``coefficient_parted`` of :func:`fit_scaling`).
 
     Returns
     -------
@@ -768,9 +786,10 @@ def fit_points(
     for key in sorted(groups):
         family, variant, k_start, k_end = key
         pts = groups[key]
-        pred = math.nan
+        pred = parted = math.nan
         if predicted is not None and variant == "ideal" and METRICS[metric].predicted:
             pred = float(predicted.get((family, k_start, k_end), math.nan))
+            parted = float((predicted_parted or {}).get((family, k_start, k_end), math.nan))
         fits.append(
             fit_scaling(
                 [float(p["tf_ns"]) for p in pts],
@@ -787,6 +806,7 @@ def fit_points(
                 coefficient_predicted=pred,
                 dynamics=dynamics,
                 time_scale_ns=time_scale_ns,
+                coefficient_parted=parted,
             )
         )
     return fits

@@ -487,6 +487,7 @@ def analyse_sweep_dir(
         predicted={k: p.coefficient for k, p in predictions.items()},
         dynamics=dynamics,
         time_scale_ns=time_scale,
+        predicted_parted={k: p.coefficient_parted for k, p in predictions.items()},
     )
     fit_path = write_fit_csv(folder / FIT_NAME, fits)
     say(f"analysis: wrote {fit_path}; drawing figures")

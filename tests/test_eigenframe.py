@@ -678,3 +678,15 @@ def test_short_linear_anneal_meets_the_accuracy_target(qubit: System, tf: float)
     ref = simulate(qubit, f, tf, integrator="general", rtol=1e-12, atol=1e-16)
     assert fast.integrator == "eigenframe"
     assert abs(fast.trace_distance - ref.trace_distance) <= 1e-6 * ref.trace_distance
+
+
+def test_error_bounds_below_atol_draw_no_warning(zero_field_ring) -> None:
+    # The zero-field ring at 2e4 ns, k_end 2, ends 3.2e-12 from its target.  Its
+    # free-oscillation estimate, 1.1e-17, exceeds FREE_MODE_RTOL of that result but lies
+    # far below atol = 1e-14, the smallest error the steps resolve; it used to draw a
+    # warning that the point might be wrong.
+    res = simulate(zero_field_ring, make_schedule("beta", k_end=2), 2e4)
+    assert res.ok and res.integrator == "eigenframe", res.message
+    estimate = res.stats["free_mode_error_estimate"]
+    assert ef.FREE_MODE_RTOL * res.trace_distance < estimate < 1e-14
+    assert not any("free oscillations" in w for w in res.warnings), res.warnings

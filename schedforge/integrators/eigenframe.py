@@ -232,14 +232,24 @@ def _fallback(
     return type(out)(out.deviation, out.rho, out.status, out.message, new_stats)
 
 
-def _needs_resolving(out: IntegrationOutcome) -> bool:
+def _error_allowance(td: float, atol: float) -> float:
+    """How large an error bound may be before it matters.
+
+    ``FREE_MODE_RTOL`` of the result, but never below ``atol``: a trace distance of
+    3e-12 at a long anneal otherwise drew a warning for an estimate of 1e-17, far
+    below anything the steps resolve.
+    """
+    return max(FREE_MODE_RTOL * td, atol)
+
+
+def _needs_resolving(out: IntegrationOutcome, atol: float) -> bool:
     """Exponential steps failed, or their free-oscillation error estimate is too large."""
     if out.stats.get("exponential_steps", 0) == 0:
         return False
     if out.status != "ok":
         return True
     td = _trace_distance(out.deviation)
-    return out.stats.get("free_mode_error_estimate", 0.0) > FREE_MODE_RTOL * td
+    return out.stats.get("free_mode_error_estimate", 0.0) > _error_allowance(td, atol)
 
 
 def _phase(system: System, tf_ns: float) -> float:
@@ -289,14 +299,14 @@ def _integrate(
     )
     out = run()
     if (
-        _needs_resolving(out)
+        _needs_resolving(out, atol)
         and out.status == "ok"
         and "max_dressing_ratio" in out.stats
         and model.dim <= DRESSING_MAX_DIM  # above, the free modes ran bare already
     ):
         _sharpen_estimate(out, run)
     sector_free_modes = out.status == "ok" and out.stats.get("sector_free_modes", 0) > 0
-    if (_needs_resolving(out) or sector_free_modes) and phase <= RESOLVED_PHASE_LIMIT:
+    if (_needs_resolving(out, atol) or sector_free_modes) and phase <= RESOLVED_PHASE_LIMIT:
         # short anneals: resolve the oscillations instead, while that stays cheap.  Free
         # modes inside Bohr sectors are not dressed by their sector couplings, and on
         # symmetric problems (a uniform ring) that left 2e-6 to 1e-5 relative at
@@ -305,10 +315,10 @@ def _integrate(
     return out
 
 
-def _crossing_doubt(stats: dict[str, Any], td: float) -> str | None:
+def _crossing_doubt(stats: dict[str, Any], td: float, atol: float) -> str | None:
     """What the diabatic passages leave in doubt, when their bound matters, else None."""
     crossing = stats.get("crossing_error_estimate", 0.0)
-    if crossing <= FREE_MODE_RTOL * td:
+    if crossing <= _error_allowance(td, atol):
         return None
     return (
         f"{stats.get('diabatic_crossings', 0)} narrow avoided crossing(s) passed "
@@ -352,17 +362,18 @@ def eigenframe_integrator(
     too_long = "the general integrator would take too long at this tf"
     if out.status != "ok":
         return _fallback(system, schedule, tf_ns, out.message, rtol, atol, stats)
-    if _needs_resolving(out):
+    if _needs_resolving(out, atol):
         if _handover_affordable(system, phase):
             why = "free oscillations not resolved to the accuracy target"
             return _fallback(system, schedule, tf_ns, why, rtol, atol, stats)
         estimate = stats.get("free_mode_error_estimate", 0.0)
         stats["warnings"] = (
             f"eigenframe integrator: estimated error from free oscillations {estimate:.2g} "
-            f"(absolute in trace distance) exceeds {FREE_MODE_RTOL:g} of the result; {too_long}",
+            f"(absolute in trace distance) exceeds {FREE_MODE_RTOL:g} of the result and "
+            f"atol {atol:g}; {too_long}",
         )
     td = _trace_distance(out.deviation)
-    what = _crossing_doubt(stats, td)
+    what = _crossing_doubt(stats, td, atol)
     if what is not None:
         if _handover_affordable(system, phase):
             return _fallback(system, schedule, tf_ns, what, rtol, atol, stats)
