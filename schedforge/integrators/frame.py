@@ -31,8 +31,10 @@ __all__ = [
     "diabatic_states",
     "frame_tol",
     "opening_levels",
+    "splitting_basis",
     "transport_rotation",
     "transported",
+    "unsplit_groups",
 ]
 
 
@@ -95,25 +97,73 @@ def opening_levels(
     E_end: NDArray[np.float64],
     V_start: NDArray[np.float64],
     dH_start: NDArray[np.float64],
-) -> NDArray[np.intp] | None:
-    """Labels of degenerate levels at the step's start that are split at its end.
+) -> list[NDArray[np.intp]]:
+    """Groups of degenerate levels at the step's start that are split at its end.
 
     Their basis inside the eigenspace was chosen by transport and need not be the one
     the levels split into.  Only groups that dH/ds does not split at first order count:
     where it does, the frame already holds its eigenvectors there (the limit of the
-    eigenbasis, ``adapt_degenerate``).  None when no such group splits over the step.
+    eigenbasis, ``adapt_degenerate``).  Empty when no such group splits over the step.
     """
-    tol = frame_tol(E_start[None])
-    opening = []
-    for _, members in degenerate_clusters(E_start[None], tol):
-        if np.ptp(E_end[members]) <= frame_tol(E_end[None]):
+    tol_end = frame_tol(E_end[None])
+    groups = unsplit_groups(E_start, V_start, dH_start)
+    return [members for members in groups if np.ptp(E_end[members]) > tol_end]
+
+
+def unsplit_groups(
+    E: NDArray[np.float64], V: NDArray[np.float64], dH: NDArray[np.float64]
+) -> list[NDArray[np.intp]]:
+    """Groups of degenerate levels that dH/ds does not split at first order."""
+    out = []
+    for _, members in degenerate_clusters(E[None], frame_tol(E[None])):
+        block = V[:, members]
+        first = np.linalg.eigvalsh(block.T @ dH @ block)
+        if np.min(np.diff(first)) <= DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(first)))):
+            out.append(members)
+    return out
+
+
+def splitting_basis(
+    E: NDArray[np.float64],
+    V: NDArray[np.float64],
+    dH: NDArray[np.float64],
+    d2H: NDArray[np.float64],
+    members: NDArray[np.intp],
+) -> NDArray[np.float64] | None:
+    """The basis that degenerate levels part into as s moves on, or None.
+
+    First order (degenerate perturbation theory; Kato, *Perturbation Theory for Linear
+    Operators*, 1966): the eigenvectors of ``P H' P``.  Inside each of its eigenspaces
+    D_1 that holds several levels, the parting starts at second order in the distance
+    along s, with the effective operator
+
+        W_1 = P_1 H'' P_1 / 2 + P_1 H' Q (E_D - H)^(-1) Q H' P_1
+
+    (Q: the other levels; the schedule's f'' adds a multiple of ``P_1 H' P_1``, the
+    identity there, and f'^2 scales W_1), whose eigenvectors are the limit of the
+    eigenvectors as the levels part.  None where W_1 leaves some of them together too
+    (a higher order, or a symmetry).
+    """
+    block = V[:, members]
+    first, rot = np.linalg.eigh(block.T @ dH @ block)
+    block = block @ rot
+    others = np.setdiff1d(np.arange(E.size), members)
+    coupling = block.T @ dH @ V[:, others]  # (k, d - k)
+    denom = np.mean(E[members]) - E[others]
+    W = 0.5 * (block.T @ d2H @ block) + (coupling / denom) @ coupling.T
+    scale = max(1.0, float(np.max(np.abs(first))))
+    edges = np.flatnonzero(np.diff(first) > DEGENERACY_RTOL * scale) + 1
+    # W's natural size, |H'|^2 / (level distance): a W that vanishes (a uniform ring's
+    # levels that part at third order) must not be split by its rounding errors
+    w_scale = np.linalg.norm(dH, 2) ** 2 / max(float(np.max(np.abs(denom))), 1e-300)
+    for sub in np.split(np.arange(first.size), edges):
+        if sub.size < 2:
             continue
-        block = V_start[:, members]
-        first = np.linalg.eigvalsh(block.T @ dH_start @ block)
-        if np.min(np.diff(first)) > DEGENERACY_RTOL * max(1.0, float(np.max(np.abs(first)))):
-            continue
-        opening.append(members)
-    return np.concatenate(opening) if opening else None
+        w, r = np.linalg.eigh(0.5 * (W[np.ix_(sub, sub)] + W[np.ix_(sub, sub)].T))
+        if np.min(np.diff(w)) <= DEGENERACY_RTOL * w_scale:
+            return None
+        block[:, sub] = block[:, sub] @ r
+    return block
 
 
 def transported(Vc: NDArray[np.float64], Q: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -252,6 +302,10 @@ class EigenframeModel:
         ``gamma(omega) -> rate`` in rad/ns, vectorised.
     beta : float
         Inverse temperature in ns/rad.
+    hamiltonian_curvature : callable, optional
+        ``hamiltonian_curvature(s) -> d^2 H / ds^2`` (d, d) at one point: the basis
+        that degenerate levels part into at second order (:func:`splitting_basis`).
+        Without it that basis is taken from the eigenvectors at the step's end.
     """
 
     def __init__(
@@ -260,8 +314,10 @@ class EigenframeModel:
         operators: Any,
         spectral_density: Any,
         beta: float,
+        hamiltonian_curvature: Any = None,
     ) -> None:
         self.hamiltonian_batch = hamiltonian_batch
+        self.hamiltonian_curvature = hamiltonian_curvature
         self.operators = []
         for op in operators:
             op = np.asarray(op)
@@ -283,17 +339,21 @@ class EigenframeModel:
         d = driver.shape[0]
         idx = np.arange(d)
 
+        def combine(ab: NDArray[np.float64]) -> NDArray[np.float64]:
+            """H's matrices from the curves' coefficients of one order, (2, n)."""
+            mats = (-scale * ab[0])[:, None, None] * driver[None]
+            mats[:, idx, idx] += (scale * ab[1])[:, None] * diag[None, :]
+            return mats
+
         def batch(s: NDArray[np.float64]) -> tuple[NDArray, NDArray]:
             ab = ham.curves.derivatives(np.asarray(s, dtype=float), 1)  # (2, 2, n)
-            out = []
-            for order in (0, 1):
-                mats = (-scale * ab[0, order])[:, None, None] * driver[None]
-                mats[:, idx, idx] += (scale * ab[1, order])[:, None] * diag[None, :]
-                out.append(mats)
-            return out[0], out[1]
+            return combine(ab[:, 0]), combine(ab[:, 1])
+
+        def curvature(s: float) -> NDArray[np.float64]:
+            return combine(ham.curves.derivatives(np.array([float(s)]), 2)[:, 2])[0]
 
         bath = system.bath
-        return cls(batch, bath.operators, bath.gamma, bath.beta)
+        return cls(batch, bath.operators, bath.gamma, bath.beta, curvature)
 
     def frame(
         self,
