@@ -545,7 +545,7 @@ PREDICTION_REACH = 2.0
 
 
 def predict_step(
-    previous: tuple[float, float, NDArray[Any], NDArray[Any]] | None,
+    previous: tuple[float, float, NDArray[Any], NDArray[Any], NDArray[np.float64]] | None,
     x: float,
     h: float,
     tau: NDArray[np.float64],
@@ -553,20 +553,21 @@ def predict_step(
 ) -> tuple[NDArray[Any], NDArray[Any]] | None:
     """Starting values at the nodes ``x + h tau`` from the last accepted step.
 
-    The collocation polynomial of that step, extrapolated (the usual predictor of
+    The collocation polynomial of that step (``previous``: its start, length, values
+    at its nodes and the nodes ``tau_old``), extrapolated (the usual predictor of
     implicit Runge-Kutta codes, Hairer & Wanner 1996, IV.8).  Coherences entering the
     exponential treatment start from zero: their old values carry the oscillation
     that the new step splits off.  None when there is no previous step.
     """
     if previous is None:
         return None
-    x_old, h_old, P_old, C_old = previous
+    x_old, h_old, P_old, C_old, tau_old = previous
     t = (x + h * tau - x_old) / h_old
     if t[-1] <= 1.0 + PREDICTION_REACH:
-        weights = lagrange_weights(tau, t)
+        weights = lagrange_weights(tau_old, t)
     else:
-        weights = np.zeros((t.size, tau.size))
-        weights[:, -3:] = lagrange_weights(tau[-3:], t)
+        weights = np.zeros((t.size, tau_old.size))
+        weights[:, -3:] = lagrange_weights(tau_old[-3:], t)
     P = weights @ P_old
     C = np.tensordot(weights, C_old, axes=(1, 0))
     C[:, entering] = 0.0
