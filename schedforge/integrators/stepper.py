@@ -68,6 +68,7 @@ __all__ = [
     "LEVIN_COMFORT",
     "LEVIN_THRESHOLD",
     "MAX_STEPS",
+    "RESOLVING_STAGES",
     "EigenframeStepper",
     "clean_jump",
 ]
@@ -199,7 +200,8 @@ class EigenframeStepper:
     rtol, atol : float
         Local error targets on the deviation: ``atol + rtol * |delta|``.
     stages : int
-        Collocation stages per step.
+        Collocation stages per step; in "auto" mode ``RESOLVING_STAGES`` while every
+        coherence is resolved (see :meth:`_choose_scheme`).
     max_steps : int
         Step budget (accepted plus rejected).
     h_max : float
