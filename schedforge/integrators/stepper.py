@@ -104,10 +104,11 @@ MAX_STEPS = 100_000
 ROTATION_AIM = 0.7 * math.acos(FRAME_OVERLAP_MIN)
 #: Longest exponential jump tried after an accepted one.
 JUMP_LIMIT = 0.05
-#: Collocation stages of the steps that resolve every coherence while the last step's
-#: length was set by a resolved oscillation (no exponential updates, no free modes):
-#: a higher degree follows an oscillation further per step.  Exponential (Levin) steps
-#: keep ``stages``: their collocation amplifies rough forcing by (m^2 / |tf lambda h|)^m.
+#: Collocation stages of the steps that resolve every coherence, from a step whose
+#: length a resolved oscillation set until the next jump (no exponential updates, no
+#: free modes meanwhile): a higher degree follows an oscillation further per step.
+#: Exponential (Levin) steps keep ``stages``: their collocation amplifies rough forcing
+#: by (m^2 / |tf lambda h|)^m.
 RESOLVING_STAGES = 12
 
 
@@ -423,9 +424,9 @@ class EigenframeStepper:
         """Use ``RESOLVING_STAGES`` while every coherence is resolved; the step for it.
 
         From a step whose length was set by a resolved oscillation on, until a jump to
-        exponential updates (nothing takes them or runs free meanwhile).  The oscillation a step can
-        follow grows about like the number of stages, and so does the step where the
-        scheme changes (kept at the same length, a step after the finer ones was
+        exponential updates (nothing takes them or runs free meanwhile).  The oscillation
+        a step can follow grows about like the number of stages, and so does the step
+        where the scheme changes (kept at the same length, a step after the finer ones was
         rejected again and again: the fully connected 3-qubit instance at 1e2 ns took
         276 rejections).
         """
