@@ -838,6 +838,8 @@ class EigenframeStepper:
                 stats.get("crossing_gap_ghz", 0.0), passage.gap / (2 * math.pi)
             )
         self.previous = (at.x, at.h, res.P, res.C, self.scheme.tau)
+        if self.resolving_only:
+            stats["resolving_steps"] = stats.get("resolving_steps", 0) + 1
         self.resolving = res.resolving
         p, c, A = res.P[-1].copy(), res.C[-1].copy(), A_new
         if passage is not None:  # back from the diabatic states into the eigenframe
