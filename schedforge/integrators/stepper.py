@@ -586,10 +586,10 @@ class EigenframeStepper:
                 self.Vref, fr.V[0], at.passage.labels, self.last_frame.pi[-1], p0, c0, A0
             )
         guess = predict_step(self.previous, self.x, h, self.scheme.tau, entering)
+        # ``sector``: each node's own couplings (the model), also after a joined slow
+        # solve: the free modes take those, and the joint grouping's bound covers the
+        # slow solve alone
         res, solve, sector = self._solve_slow(at, levin, p0, c0, guess)
-        # the free modes take each node's own grouping: joined, the partners their
-        # sectors gain feed them into elements that are not free (``sector_leak``), and a
-        # zero-field ring's odd sector at 2e4 ns drew a warning for 9e-14
         if entering.any() and not self.dressed:
             A_new = A0 + np.where(entering, c0 - res.C[0], 0.0)
         elif entering.any():
@@ -661,9 +661,10 @@ class EigenframeStepper:
         solve_joint = self._slow_solver(h, levin, fr, fd, joint)
         with np.errstate(over="ignore", invalid="ignore"):
             res_joint = solve_joint(p0, c0, guess)
-        stats["iterations"] += res.iterations
         if not np.isfinite(res_joint.err) or res_joint.err > min(res.err, 1.0):
+            stats["iterations"] += res_joint.iterations  # the caller counts the one returned
             return res, solve, sector
+        stats["iterations"] += res.iterations
         if res_joint.err <= 1.0:
             self.step_mismatch = grouping_mismatch(
                 joint, sector, res_joint.P, res_joint.C, span, self.scheme.w
