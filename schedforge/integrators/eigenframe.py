@@ -304,7 +304,7 @@ def _integrate(
         degeneracy_tol=system.degeneracy_tol,
         max_steps=max_steps,
     )
-    out, run = _joined_or_not(run)
+    out = run()
     if (
         _needs_resolving(out, atol)
         and out.status == "ok"
@@ -318,30 +318,8 @@ def _integrate(
         # modes inside Bohr sectors are not dressed by their sector couplings, and on
         # symmetric problems (a uniform ring) that left 2e-6 to 1e-5 relative at
         # 30-100 ns, below the estimate; resolved steps agreed to 2.5e-8
-        out, _ = _joined_or_not(partial(run, mode="resolved", stages=RESOLVED_STAGES))
+        out = run(mode="resolved", stages=RESOLVED_STAGES)
     return out
-
-
-def _joined_or_not(run: Any) -> tuple[IntegrationOutcome, Any]:
-    """``run()``, redone with each node's own grouping where joining mattered.
-
-    Returns the outcome and the run to use for further runs of the point (with
-    ``join=False`` once joint groupings of Bohr frequencies changed the result beyond
-    its allowance: populated levels parting inside long steps).
-    """
-    out = run()
-    if _grouping_matters(out, run.keywords["atol"]):
-        run = partial(run, join=False)
-        out = run()
-    return out, run
-
-
-def _grouping_matters(out: IntegrationOutcome, atol: float) -> bool:
-    """The bound on what joint groupings changed exceeds the result's allowance."""
-    if out.status != "ok":
-        return False
-    bound = out.stats.get("grouping_error_estimate", 0.0)
-    return bound > _error_allowance(_trace_distance(out.deviation), atol)
 
 
 def _crossing_doubt(stats: dict[str, Any], td: float, atol: float) -> str | None:

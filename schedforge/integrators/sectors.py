@@ -27,7 +27,6 @@ rates must be grouped (see :func:`schedforge.davies.secular_tolerance`).
 
 from __future__ import annotations
 
-import math
 from typing import Any
 
 import numpy as np
@@ -45,8 +44,6 @@ __all__ = [
     "LaidOutCoupling",
     "apply_sector",
     "as_matrices",
-    "grouping_mismatch",
-    "joint_grouping",
     "propagate_sector_modes",
     "resonant_coupling",
     "rotation_superoperator",
@@ -69,9 +66,6 @@ _STRUCTURES: dict[tuple[int, str, bytes], _SectorStructure] = {}
 FACTORED_GROUP_MIN = 64
 #: Elements of rho (d^2) up to which the free modes' resonant couplings are dense.
 DENSE_MODES_MAX = 256
-#: Largest phase (rad) the frequency differences inside a joint sector may build up over
-#: a step for the step's nodes to share one grouping (:func:`joint_grouping`).
-SECTOR_JOIN_PHASE = 1e-3
 
 
 def sector_coupling(
@@ -116,39 +110,15 @@ def sector_coupling_batch(
     operators: list[NDArray[Any]],
     gamma: Any,
     tol: float,
-    span: float | None = None,
 ) -> list[Any]:
     """:func:`sector_coupling` at n points at once (``E`` (n, d), ``V`` (n, d, d)).
 
     Points with the same grouping of Bohr frequencies (a step's nodes, as a rule)
-    share the index work and the matrix structure; only the rates differ.  With
-    ``span`` (the duration in ns the points cover, a step), the couplings of the
-    points' groupings joined into one (:func:`joint_grouping`), all None where they
-    cannot be joined.
+    share the index work and the matrix structure; only the rates differ.
     """
-    return _coupling_batch(E, V, operators, gamma, tol, span)[0]
-
-
-def _coupling_batch(
-    E: NDArray[np.float64],
-    V: NDArray[Any],
-    operators: list[NDArray[Any]],
-    gamma: Any,
-    tol: float,
-    span: float | None,
-) -> tuple[list[Any], bool]:
-    """:func:`sector_coupling_batch`, and whether the points' groupings were joined."""
     n, d = E.shape
     levels = np.stack([group_levels(E[j], tol) for j in range(n)])
     found = [bohr_groups(levels[j], tol) for j in range(n)]
-    joined = False
-    if span is not None and n > 1:
-        joint = joint_grouping(E, [gid for _, gid, _ in found], span)
-        if joint is None:
-            return [None] * n, False  # the points' own groupings: asked for separately
-        omega = E[:, None, :] - E[:, :, None]
-        found = [(omega[j], joint, 0) for j in range(n)]
-        joined = True
     # points with the same grouping (a step's nodes, as a rule) share the index work
     shared: dict[bytes, list[int]] = {}
     for j, (_, gj, _) in enumerate(found):
@@ -166,7 +136,7 @@ def _coupling_batch(
         couplings = _couplings(gid, np.sqrt(np.maximum(g, 0.0)), ops.reshape(at.size, -1, d * d))
         for j, S in zip(points, couplings, strict=True):
             out[j] = S
-    return out, joined
+    return out
 
 
 def _couplings(
@@ -184,65 +154,6 @@ def _couplings(
     return [
         FactoredCoupling(gid, large, sqrt_g[j], ops[j], rest[j]) for j in range(sqrt_g.shape[0])
     ]
-
-
-def joint_grouping(
-    E: NDArray[np.float64], groupings: list[NDArray[np.int64]], span: float
-) -> NDArray[np.int64] | None:
-    """One grouping for points whose pointwise groupings differ, or None.
-
-    Two elements share a joint group where they share a group at any of the points.
-    Where levels part or Bohr frequencies separate inside a step, the pointwise
-    groupings switch Davies terms on and off between the step's nodes: the coupling
-    is then discontinuous within the step, its collocation error falls only like
-    the step's length, and the step controller shrinks the step again and again (the
-    ladder of the transverse driver near s = 0 parts at hundreds of points: the
-    fully connected 6-qubit instance took 124 attempts for x < 3e-5 at 1e3 ns).
-    Joined, the terms act over the whole step.  A term between frequencies
-    omega_p, omega_q turns at their difference, and the secular approximation drops
-    it because that turning averages it out; over a span in which it turns by much
-    less than a radian it has not begun to average out, so keeping it is as accurate
-    as dropping it.  The joint grouping is returned while the largest spread
-    of a joint group's frequencies at any point, times ``span``, stays below
-    ``SECTOR_JOIN_PHASE``; otherwise None (the pointwise groupings are used).
-    The pointwise groupings are the model (the general integrator's too): the
-    stepper joins only a step that failed twice at one point with them, adds up
-    what joining changed (:func:`grouping_mismatch`), and the run is redone
-    without joining where that sum matters for the result.  Joined in every step
-    whose groupings differ, a 3-qubit chain without fields at 10 ns, whose populated
-    levels part near the end, was 2e-6 off the general integrator, and the fully
-    connected 4- and 5-qubit instances took 10 % more rejections.
-
-    Parameters
-    ----------
-    E : ndarray (n, d)
-        Energies (rad/ns) at the points, in the frame's label order.
-    groupings : list of ndarray (d, d) of int
-        Each point's group labels of the Bohr frequencies (:func:`.davies.bohr_groups`).
-    span : float
-        Duration (ns) the points cover.
-    """
-    first = groupings[0]
-    if all(np.array_equal(first, g) for g in groupings[1:]):
-        return None
-    n, D = len(groupings), first.size
-    # elements joined to (point, group) nodes; connected components are the joint groups
-    offsets = np.cumsum([0] + [int(g.max()) + 1 for g in groupings])
-    cols = np.concatenate([g.ravel() + offsets[j] for j, g in enumerate(groupings)])
-    rows = np.tile(np.arange(D), n)
-    graph = sparse.csr_matrix(
-        (np.ones(rows.size), (rows, cols + D)), shape=(D + offsets[-1], D + offsets[-1])
-    )
-    _, labels = csgraph.connected_components(graph, directed=False)
-    joint = labels[:D].astype(np.int64)
-    _, joint = np.unique(joint, return_inverse=True)
-    order = np.argsort(joint, kind="stable")
-    starts = np.flatnonzero(np.diff(np.concatenate(([-1], joint[order]))))
-    omega = (E[:, None, :] - E[:, :, None]).reshape(n, D)[:, order]
-    spread = np.maximum.reduceat(omega, starts, axis=1) - np.minimum.reduceat(omega, starts, axis=1)
-    if float(np.max(spread)) * span > SECTOR_JOIN_PHASE:
-        return None
-    return joint.reshape(first.shape)
 
 
 def _coupled_grouping(gid: NDArray[np.int64]) -> NDArray[np.int64] | None:
@@ -644,50 +555,17 @@ def apply_sector(sector: list[Any], rho: NDArray[np.complex128]) -> NDArray[np.c
     return out.reshape(rho.shape)
 
 
-def sector_couplings(
-    model: EigenframeModel, fr: FrameData, tol: float, span: float | None = None
-) -> tuple[list[Any] | None, bool]:
-    """The Bohr-sector couplings at the step's nodes (None where there are none).
+def sector_couplings(model: EigenframeModel, fr: FrameData, tol: float) -> list[Any] | None:
+    """The Bohr-sector couplings at the step's nodes, or None where there are none.
 
     Only where some node has coinciding Bohr frequencies or degenerate levels
     (within ``tol``); elsewhere the eigenframe's rates are the whole generator.
-    ``span``: the step's duration (ns), to join the nodes' groupings
-    (:func:`joint_grouping`; None where they cannot be joined).  Also returned:
-    whether they were joined.
     """
     tol = max(tol, frame_tol(fr.E))
     if not np.any((fr.min_bohr_gap <= tol) | (fr.min_level_gap <= tol)):
-        return None, False
-    out, joined = _coupling_batch(fr.E, fr.V, model.operators, model.gamma, tol, span)
-    return (None, False) if all(S is None for S in out) else (out, joined)
-
-
-def grouping_mismatch(
-    joint: list[Any] | None,
-    pointwise: list[Any] | None,
-    P: NDArray[Any],
-    C: NDArray[Any],
-    span: float,
-    weights: NDArray[np.float64],
-) -> float:
-    """A bound (trace norm) on what the joint grouping of a step changed in its solution.
-
-    ``span`` times the quadrature (``weights`` on the step's nodes) of the trace norm
-    of (S_joint - S_pointwise) rho at each node, bounded by sqrt(d) times its
-    Frobenius norm, rho the step's solution (populations ``P`` (n, d), coherences
-    ``C`` (n, d, d)): the terms the joint grouping switched on where the pointwise
-    one has them off, acting on the state.  The dynamics after the step is a
-    contraction in trace norm, so the sum over steps bounds the change of the result.
-    """
-    n, d = P.shape
-    rho = np.array(C, dtype=complex)
-    rho[:, np.arange(d), np.arange(d)] = P
-
-    def applied(sector: list[Any] | None) -> NDArray[np.complex128]:
-        return np.zeros_like(rho) if sector is None else apply_sector(sector, rho)
-
-    change = np.linalg.norm((applied(joint) - applied(pointwise)).reshape(n, -1), axis=1)
-    return float(span * math.sqrt(d) * np.dot(weights, change))
+        return None
+    out = sector_coupling_batch(fr.E, fr.V, model.operators, model.gamma, tol)
+    return None if all(S is None for S in out) else out
 
 
 def resonant_coupling(

@@ -56,7 +56,6 @@ from .free_modes import (
 )
 from .sectors import (
     as_matrices,
-    grouping_mismatch,
     propagate_sector_modes,
     resonant_coupling,
     sector_couplings,
@@ -223,11 +222,6 @@ class EigenframeStepper:
         estimate).  ``False`` propagates them bare; the difference between the two
         measures the size of the dressing, which the registered integrator uses to
         check its error estimate.
-    join : bool
-        Where a step across separating Bohr frequencies fails again at one point
-        with its nodes' own groupings, try it with them joined
-        (:func:`.sectors.joint_grouping`; default); a bound on what that changed is
-        ``stats["grouping_error_estimate"]``.  ``False`` keeps each node's own.
 
     Attributes
     ----------
@@ -254,7 +248,6 @@ class EigenframeStepper:
         mode: str = "auto",
         degeneracy_tol: float = 0.0,
         dress: bool = True,
-        join: bool = True,
     ) -> None:
         self.model = model
         self.schedule = schedule
@@ -269,7 +262,6 @@ class EigenframeStepper:
         self.max_steps = max_steps
         self.h_max = h_max
         self.dress = dress
-        self.join = join
         # above DRESSING_MAX_DIM the free modes run bare; their first-order terms count
         self.dressed = dress and model.dim <= DRESSING_MAX_DIM
         self.sector_tol = degeneracy_tol
@@ -299,9 +291,6 @@ class EigenframeStepper:
         self.x = 0.0
         self.free_err = 0.0
         self.crossing_err = 0.0
-        self.grouping_err = 0.0  # bound on what joint groupings changed (trace norm)
-        self.step_mismatch = 0.0  # the attempted step's part of it
-        self.rejected_x = -1.0  # where the last rejected step started
         self.crossed: list[tuple[int, int]] = []  # label pairs passed diabatically
         self.jump_limit = JUMP_LIMIT  # longest jump to try; shrinks after a failed jump
         self.jump_pause = 0  # accepted steps to wait before trying another jump
@@ -387,8 +376,6 @@ class EigenframeStepper:
         stats["free_mode_error_estimate"] = float(self.free_err)
         if self.crossing_err > 0.0 or "diabatic_crossings" in stats:
             stats["crossing_error_estimate"] = float(self.crossing_err)
-        if self.grouping_err > 0.0:
-            stats["grouping_error_estimate"] = float(self.grouping_err)
         stats["mode"] = "exponential" if stats["exponential_steps"] else "resolved"
         stats["secular_tol_ghz"] = float(self.sector_tol) / (2 * math.pi)
         V1 = fr.V[-1]
@@ -403,7 +390,6 @@ class EigenframeStepper:
 
     def _reject(self, factor: float, why: str) -> bool:
         self.h *= factor
-        self.rejected_x = self.x
         self.stats["rejected"] += 1
         self.stats[f"rejected_{why}"] = self.stats.get(f"rejected_{why}", 0) + 1
         return False
@@ -560,6 +546,9 @@ class EigenframeStepper:
         """Solve the step's slow system, then accept it or shorten the step."""
         d, tf, fr, fd, h = self.model.dim, self.tf, at.fr, at.fd, at.h
         stats = self.stats
+        sector = sector_couplings(self.model, fr, self.sector_tol)
+        if sector is not None:
+            stats["sector_steps"] = stats.get("sector_steps", 0) + 1
         lam_nodes = tf * fr.lam
         levin = np.zeros((d, d), dtype=bool)
         if self.allow_levin and not self.resolving_only:
@@ -586,10 +575,9 @@ class EigenframeStepper:
                 self.Vref, fr.V[0], at.passage.labels, self.last_frame.pi[-1], p0, c0, A0
             )
         guess = predict_step(self.previous, self.x, h, self.scheme.tau, entering)
-        # ``sector``: each node's own couplings (the model), also after a joined slow
-        # solve: the free modes take those, and the joint grouping's bound covers the
-        # slow solve alone
-        res, solve, sector = self._solve_slow(at, levin, p0, c0, guess)
+        solve = self._slow_solver(h, levin, fr, fd, sector)
+        with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
+            res = solve(p0, c0, guess)
         if entering.any() and not self.dressed:
             A_new = A0 + np.where(entering, c0 - res.C[0], 0.0)
         elif entering.any():
@@ -614,62 +602,6 @@ class EigenframeStepper:
             A_new = self._propagate_free(A_new, free, labels, sector, lam_nodes, at)
         self._accept(at, res, A_new, levin, labels)
         return True
-
-    def _solve_slow(
-        self,
-        at: _Attempt,
-        levin: NDArray[np.bool_],
-        p0: NDArray[np.float64],
-        c0: NDArray[np.complex128],
-        guess: Any,
-    ) -> tuple[SlowStep, Any, list[Any] | None]:
-        """The step's slow solve, its solver, and the nodes' own sector couplings.
-
-        With each node's own grouping of Bohr frequencies (the model).  Where that
-        fails again at one point (a second rejection at x, not a jump) and the nodes'
-        groupings differ, the step is solved with them joined
-        (:func:`.sectors.joint_grouping`, unless ``join`` is off): the generator then
-        has no switch inside the step.  The better of the two solves is returned, and
-        where the joined one is acceptable, a bound on what joining changed
-        (:func:`.sectors.grouping_mismatch`) is kept for ``grouping_err``.  Near s = 0
-        of the fully connected 6-qubit instance at 1e3 ns, the driver's ladder parts at
-        hundreds of points, and the steps' error estimates fell only like h across
-        each switch: 4 joined steps there cut the rejections from 273 to 178.
-        """
-        fr, fd, h, stats = at.fr, at.fd, at.h, self.stats
-        span = self.tf * h
-        sector, _ = sector_couplings(self.model, fr, self.sector_tol)
-        if sector is not None:
-            stats["sector_steps"] = stats.get("sector_steps", 0) + 1
-        solve = self._slow_solver(h, levin, fr, fd, sector)
-        with np.errstate(over="ignore", invalid="ignore"):  # divergence = rejected step
-            res = solve(p0, c0, guess)
-        self.step_mismatch = 0.0
-        if (
-            not self.join
-            or sector is None
-            or at.jumped  # a failed jump fails for its free modes, not for a grouping
-            or (np.isfinite(res.err) and res.err <= 1.0)
-            # after a first rejection at x: most steps need no more than one
-            or self.rejected_x != self.x
-        ):
-            return res, solve, sector
-        # rejected again with each node's own grouping: where they differ, joined
-        joint, joined = sector_couplings(self.model, fr, self.sector_tol, span)
-        if not joined:
-            return res, solve, sector
-        solve_joint = self._slow_solver(h, levin, fr, fd, joint)
-        with np.errstate(over="ignore", invalid="ignore"):
-            res_joint = solve_joint(p0, c0, guess)
-        if not np.isfinite(res_joint.err) or res_joint.err > min(res.err, 1.0):
-            stats["iterations"] += res_joint.iterations  # the caller counts the one returned
-            return res, solve, sector
-        stats["iterations"] += res.iterations
-        if res_joint.err <= 1.0:
-            self.step_mismatch = grouping_mismatch(
-                joint, sector, res_joint.P, res_joint.C, span, self.scheme.w
-            )
-        return res_joint, solve_joint, sector
 
     def _slow_solver(
         self,
@@ -886,9 +818,6 @@ class EigenframeStepper:
         """Move the state to the end of the accepted step and choose the next length."""
         stats, fr, passage = self.stats, at.fr, at.passage
         stats["steps"] += 1
-        if self.step_mismatch > 0.0:
-            self.grouping_err += self.step_mismatch
-            stats["joined_sector_steps"] = stats.get("joined_sector_steps", 0) + 1
         self.jump_pause = max(self.jump_pause - 1, 0)
         if at.jumped:
             self.jump_limit = JUMP_LIMIT
