@@ -789,3 +789,20 @@ def test_rebased_frame_stays_an_eigenbasis() -> None:
     in_frame = run.Vref.T @ H0 @ run.Vref
     off = in_frame - np.diag(np.diag(in_frame))
     assert np.max(np.abs(off)) < 1e-12 * np.max(np.abs(H0))
+
+
+def test_transport_rotation_is_quiet_where_the_reference_misses_the_eigenspace() -> None:
+    # before an exact crossing between symmetry sectors is passed, the reference basis
+    # of a degenerate group can miss the group's eigenspace (M = Q^T P Q singular);
+    # the step that sees it is discarded or rejected, and numpy's overflow warnings
+    # reached the users of a hand-written 5-qubit star
+    import warnings
+
+    E = np.array([[0.0, 0.0, 1.0]])
+    V = np.eye(3)[None]
+    Hp = np.ones((1, 3, 3))
+    Q = np.zeros((3, 2))
+    Q[2, 0] = 1.0  # orthogonal to the span of levels 0 and 1
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        frame.transport_rotation(E, V, Hp, np.array([0, 1]), Q)

@@ -208,19 +208,23 @@ def transport_rotation(
         N = np.zeros_like(B)
     mu, U = np.linalg.eigh(Bt @ B)
     mu = np.maximum(mu, 1e-300)
-    r = mu**-0.5
-    diff = mu[..., :, None] - mu[..., None, :]
-    same = np.abs(diff) <= 1e-14 * mu.max(axis=-1)[..., None, None]
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # a reference that misses the eigenspace (M singular: at an exact crossing between
+    # symmetry sectors, before the crossing is passed) gives non-finite entries; such a
+    # frame is replaced by the passage's or its step fails its solve and is rejected,
+    # and numpy's warnings about it reached users (a 5-qubit star at 1e3 ns)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        r = mu**-0.5
+        diff = mu[..., :, None] - mu[..., None, :]
+        same = np.abs(diff) <= 1e-14 * mu.max(axis=-1)[..., None, None]
         dd = np.where(
             same, -0.5 * mu[..., :, None] ** -1.5, (r[..., :, None] - r[..., None, :]) / diff
         )
-    Ut = np.swapaxes(U, -1, -2)
-    Mp = N + np.swapaxes(N, -1, -2)
-    inv_sqrt = (U * r[..., None, :]) @ Ut
-    sqrt = (U * (mu**0.5)[..., None, :]) @ Ut
-    d_inv_sqrt = U @ (dd * (Ut @ Mp @ U)) @ Ut
-    K = inv_sqrt @ N @ inv_sqrt + sqrt @ d_inv_sqrt
+        Ut = np.swapaxes(U, -1, -2)
+        Mp = N + np.swapaxes(N, -1, -2)
+        inv_sqrt = (U * r[..., None, :]) @ Ut
+        sqrt = (U * (mu**0.5)[..., None, :]) @ Ut
+        d_inv_sqrt = U @ (dd * (Ut @ Mp @ U)) @ Ut
+        K = inv_sqrt @ N @ inv_sqrt + sqrt @ d_inv_sqrt
     return 0.5 * (K - np.swapaxes(K, -1, -2))
 
 
