@@ -806,3 +806,30 @@ def test_transport_rotation_is_quiet_where_the_reference_misses_the_eigenspace()
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         frame.transport_rotation(E, V, Hp, np.array([0, 1]), Q)
+
+
+def test_levels_degenerate_across_a_step_add_nothing_to_the_crossing_bound() -> None:
+    # Two levels of different symmetry sectors that coincide all along a step swap
+    # their energy ranks by rounding; nothing is left out by passing them.  Counted as a
+    # crossing with no sweep (Landau-Zener P = 1), such pairs gave a hand-written
+    # 5-qubit star a bound of 2.4e-6 and a warning.  A pair that does cross keeps its
+    # bound: 2 (sqrt(P) + theta_0 + theta_1) (rho_aa + rho_bb), P from the Landau-Zener
+    # formula (Zener, Proc. R. Soc. A 137, 696, 1932).
+    from types import SimpleNamespace
+
+    tf, speed = 100.0, 1.0
+    s = np.array([0.0, 0.4, 1.0])
+    split = 1e-3 * (s - 0.5)  # E_2 - E_3 = 2 split: crosses at s = 0.5, between nodes
+    E = np.stack([np.full(3, -1.0), np.full(3, -1.0), split, -split], axis=1)
+    slope = np.tile([0.0, 0.0, 1e-3, -1e-3], (3, 1))
+    fr = SimpleNamespace(E=E, slope=slope, K=np.zeros((3, 4, 4)))
+    order = np.array([0, 1, 2, 3])
+    new = np.tile([1, 0, 3, 2], (3, 1))  # both pairs swap ranks
+    weight = np.array([0.3, 0.2, 0.25, 0.25])
+    lost = np.array([0, 1, 2, 3])
+    passage = crossings._diabatic_passage(fr, order, new, lost, np.full(3, speed), tf, weight)
+    assert set(passage.pairs) == {(0, 1), (2, 3)}
+    gap = 2e-4  # the smallest sampled |E_2 - E_3|, at s = 0.4
+    P = -math.expm1(-math.pi * gap**2 / (2.0 * 2e-3 * speed / tf))
+    theta = 2 * 0.5 * gap / 1e-3  # at both ends |E_2 - E_3| = 1e-3
+    assert passage.error == pytest.approx(2.0 * (math.sqrt(P) + theta) * 0.5, rel=1e-12)
