@@ -22,6 +22,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from numpy.typing import NDArray
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm as scipy_expm
 from scipy.optimize import minimize_scalar
@@ -413,7 +414,14 @@ def test_narrow_crossing_matches_general(j: float, passed: bool) -> None:
         assert "diabatic_crossings" not in res.stats
         return
     assert res.stats["diabatic_crossings"] == 1
-    assert abs(res.trace_distance - ref.trace_distance) <= res.stats["crossing_error_estimate"]
+    # within what the result claims: the crossing's bound plus the free modes' estimate.
+    # The crossing's bound alone (1.9e-10) held on the Intel machine of 2 Dec (7.6e-11
+    # off) but not on an AMD one on 3 Dec (1.4e-9 off; 8.1e-10 with the dressing fixes
+    # of that day, free-mode estimate 4.7e-8): the exponential steps' result moves with
+    # the machine's rounding at that level, inside their estimate; the bound itself is
+    # checked against the two-level dynamics above
+    claimed = res.stats["crossing_error_estimate"] + res.stats["free_mode_error_estimate"]
+    assert abs(res.trace_distance - ref.trace_distance) <= claimed
     true_gap = _smallest_gap(system, 3, 0.839)
     assert 2 * math.pi * res.stats["crossing_gap_ghz"] == pytest.approx(true_gap, rel=0.1)
 
@@ -833,3 +841,118 @@ def test_levels_degenerate_across_a_step_add_nothing_to_the_crossing_bound() -> 
     P = -math.expm1(-math.pi * gap**2 / (2.0 * 2e-3 * speed / tf))
     theta = 2 * 0.5 * gap / 1e-3  # at both ends |E_2 - E_3| = 1e-3
     assert passage.error == pytest.approx(2.0 * (math.sqrt(P) + theta) * 0.5, rel=1e-12)
+
+
+def _random_generator_data(d: int, seed: int) -> tuple[NDArray, NDArray, NDArray]:
+    """Levels, a real antisymmetric frame rotation K and rates lam_ab = -i w_ab - G_ab."""
+    rng = np.random.default_rng(seed)
+    E = np.sort(rng.uniform(-5.0, 5.0, d))
+    K = rng.normal(size=(d, d))
+    K = K - K.T
+    G = rng.uniform(0.01, 0.1, (d, d))
+    G = G + G.T
+    lam = -1j * (E[:, None] - E[None, :]) * 300.0 - G
+    np.fill_diagonal(lam, 0.0)
+    return E, K, lam
+
+
+def test_dressing_is_the_first_order_response_outside_each_cluster() -> None:
+    # transient_dressing against the formula it implements, term by term: mode ab of
+    # amplitude A_ab induces S_(m,ab) A_ab / (lam_ab - lam_m) in every element m outside
+    # its cluster, with S = -f'[K, .] (so -f' K_ca in cb and +f' K_bc in ac).  Clusters
+    # closed under transposition (as resonant_clusters returns them for a Hermitian
+    # state) must give a Hermitian response; the second mask used to be the first one
+    # transposed after its cluster exclusions, which dropped ab -> ac wherever cb shared
+    # ab's cluster (2e-8 of a 2-qubit state of 2e-3 at 300 ns)
+    from schedforge.integrators.free_modes import transient_dressing
+
+    d, fp = 4, 1.7
+    _, K, lam = _random_generator_data(d, 3)
+    rng = np.random.default_rng(4)
+    A = rng.normal(size=(d, d)) + 1j * rng.normal(size=(d, d))
+    A = 1e-4 * (A + A.conj().T)
+    np.fill_diagonal(A, 0.0)
+    labels = -np.ones((d, d), dtype=np.int64)
+    for a, b in [(0, 1), (0, 2), (0, 3), (1, 3), (2, 3)]:
+        labels[a, b], labels[b, a] = 1, 2  # a cluster and its transpose, as in a run
+    _, coh = transient_dressing(A, K, fp, lam, np.zeros((d, d)), labels)
+    expected = np.zeros((d, d), dtype=complex)
+    for a in range(d):
+        for b in range(d):
+            if a == b:
+                continue
+            for c in set(range(d)) - {a, b}:
+                for m, s in (((c, b), -fp * K[c, a]), ((a, c), fp * K[b, c])):
+                    if labels[a, b] >= 0 and labels[m] == labels[a, b]:
+                        continue  # propagated with the mode, not dressed
+                    expected[m] += s * A[a, b] / (lam[a, b] - lam[m])
+    assert np.allclose(coh, expected, rtol=1e-12, atol=1e-20)
+    assert np.allclose(coh, coh.conj().T, rtol=1e-12, atol=1e-20)
+
+
+def test_cluster_substeps_keep_the_magnus_error_within_the_tolerance() -> None:
+    # two free modes (0,1) and (0,2), detuned by 1 rad over the step and coupled through
+    # a frame rotation that grows like tau^3 across it (as near levels that part):
+    # propagate_clusters against scipy.integrate.solve_ivp (DOP853, rtol 1e-13) on
+    # dA/dx = M(x) A with the same rates and couplings.  Substeps of 0.5 rad alone leave
+    # 2e-4 of the amplitude; with a tolerance, the error estimated from half as many
+    # substeps sends the cluster to finer ones, and the estimate returned is of the size
+    # of the error left.
+    from schedforge.integrators.free_modes import propagate_clusters
+
+    d, h = 3, 0.01
+    scheme = collocation_scheme(8)
+    tau = scheme.tau
+
+    def rates(t: NDArray) -> tuple[NDArray, NDArray]:
+        w1 = 2000.0 + 100.0 * t  # rates per unit x
+        return -1j * w1 - 0.2, -1j * (w1 + 100.0) - 0.3
+
+    rate = np.zeros((tau.size, d, d), dtype=complex)
+    rate[:, 0, 1], rate[:, 0, 2] = rates(tau)
+    K = np.zeros((tau.size, d, d))
+    K[:, 1, 2], K[:, 2, 1] = 40.0 * tau**3, -40.0 * tau**3
+    fp = np.ones(tau.size)
+    labels = -np.ones((d, d), dtype=np.int64)
+    labels[0, 1] = labels[0, 2] = 0
+    A = np.zeros((d, d), dtype=complex)
+    A[0, 1], A[0, 2] = 1e-4, 5e-5j
+
+    def rhs(x: float, y: NDArray) -> NDArray:
+        r1, r2 = rates(np.array(x / h))
+        k = 40.0 * (x / h) ** 3
+        return np.array([r1 * y[0] - k * y[1], k * y[0] + r2 * y[1]])
+
+    sol = solve_ivp(rhs, (0.0, h), [A[0, 1], A[0, 2]], method="DOP853", rtol=1e-13, atol=1e-22)
+    ref = sol.y[:, -1]
+    coarse, _, _ = propagate_clusters(A, labels, rate, K, fp, scheme, h)
+    fine, skipped, estimate = propagate_clusters(A, labels, rate, K, fp, scheme, h, tol=1e-13)
+    err_coarse = float(np.max(np.abs(coarse[0, 1:] - ref)))
+    err_fine = float(np.max(np.abs(fine[0, 1:] - ref)))
+    assert not skipped.any()
+    assert err_coarse > 1e-9  # fixed substeps of 0.5 rad (measured 2.4e-8)
+    assert err_fine <= 3e-13  # measured 5.7e-14
+    assert err_fine / 5.0 <= estimate <= 5.0 * err_fine
+
+
+@pytest.mark.slow
+def test_free_modes_near_parting_levels_match_resolved_steps() -> None:
+    # Two qubits whose driver levels are degenerate at s = 0: the free modes (0,1) and
+    # (0,2) split off at the first long step are nearly resonant (one cluster), and
+    # their dressing enters the resolved coherence (1,2).  Against a run that resolves
+    # every oscillation (itself checked against the general integrator above), trace
+    # norm of the difference relative to the trace distance: 2.35e-6 before the
+    # dressing was taken off the resolved elements, the masks made Hermitian and the
+    # clusters' Magnus substeps controlled; 5.6e-7 after (measured 2026-12-03).
+    problem = ProblemSpec(qubits=2, h=(0.8, 0.4), J=((0, 1, -0.17),))
+    system = System.from_spec(_spec_with(problem))
+    model = frame.EigenframeModel.from_system(system)
+    f = make_schedule("beta", k_end=3)
+    tol = system.degeneracy_tol
+    resolved = ef.integrate_eigenframe(
+        model, f, 1e3, mode="resolved", stages=ef.RESOLVED_STAGES, degeneracy_tol=tol
+    )
+    fast = ef.integrate_eigenframe(model, f, 1e3, degeneracy_tol=tol)
+    assert fast.stats["clustered_steps"] > 0
+    error = 2.0 * ef._trace_distance(fast.deviation - resolved.deviation)
+    assert error <= 1e-6 * ef._trace_distance(resolved.deviation)
