@@ -464,10 +464,10 @@ def propagate_clusters(
     cluster holds modes of a sector); the common mean of the diagonal is
     integrated exactly and the remainder by a fourth-order Magnus method on the
     Lagrange interpolant of the node values, with substeps keeping |R dx| <= 0.5
-    and, where the members' amplitudes matter, their Magnus error
-    (``MAGNUS_ERROR_COEFF``) within ``tol`` (absolute), as far as
-    ``CLUSTER_WORK_LIMIT`` allows.  Clusters that would cost more than that limit
-    anyway are left as they are and returned in the ``skipped`` mask (the caller
+    and, where a cluster's amplitude exceeds ``tol`` (absolute), its Magnus error
+    within ``tol`` as far as ``CLUSTER_WORK_LIMIT`` allows (estimated against half as
+    many substeps, :func:`_magnus_checked`).  Clusters that would cost more than that
+    limit anyway are left as they are and returned in the ``skipped`` mask (the caller
     counts their amplitude as error).  Also returns the estimated Magnus error of the
     propagated clusters (absolute, summed over clusters).
     """
