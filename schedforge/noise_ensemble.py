@@ -516,8 +516,13 @@ def _moments(values: Sequence[float]) -> tuple[float, float, float]:
     a = a[np.isfinite(a)]
     if a.size == 0:
         return math.nan, math.nan, math.nan
-    mean = float(a.mean())
-    std = float(a.std(ddof=1)) if a.size > 1 else math.nan
+    if np.all(a == a[0]):
+        # identical draws (level zero) spread by exactly nothing: the vectorised mean can
+        # differ from them in the last bit on some CPUs (std 2.6e-22 on an AMD machine)
+        mean, std = float(a[0]), (0.0 if a.size > 1 else math.nan)
+    else:
+        mean = float(a.mean())
+        std = float(a.std(ddof=1)) if a.size > 1 else math.nan
     spread = std / abs(mean) if mean != 0 and math.isfinite(std) else math.nan
     return mean, std, spread
 
